@@ -1,0 +1,5 @@
+//! Subcommands.
+
+pub mod analyze;
+pub mod bench;
+pub mod demo;

@@ -1,0 +1,3 @@
+//! Writing ONNX files (reading is tract's job).
+
+pub mod writer;
