@@ -14,7 +14,7 @@ use saccade::demo::scene;
 use saccade::engine::analysis::f32_slice;
 use saccade::engine::estimator::{EstimatorKind, Plan};
 use saccade::engine::patches::Normalizer;
-use saccade::engine::thumbnail::{area_reduce, area_reduce_simd, thumbnail_size};
+use saccade::engine::thumbnail::{area_reduce, area_reduce_loop, area_reduce_simd, thumbnail_size};
 use saccade::engine::uncertainty::{probabilities, sample_psi, summarise};
 use saccade::engine::{Bundle, Engine, Settings};
 use saccade::source::{decode_bytes, DEFAULT_MAX_PIXELS};
@@ -101,7 +101,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     let (fw, fh) = (frame.width(), frame.height());
     let mut stages = vec![measure("decode", n, || timed(|| drop(decode_bytes(&bytes, String::new(), 0, DEFAULT_MAX_PIXELS))))];
     let s = m.thumbnail_factor;
-    stages.push(measure("thumbnail (area loop)", n, || timed(|| drop(area_reduce(&frame.image, s)))));
+    stages.push(measure("thumbnail (area loop)", n, || timed(|| drop(area_reduce_loop(&frame.image, s)))));
     stages.push(measure("thumbnail (fast_image_resize box)", n, || timed(|| drop(area_reduce_simd(&frame.image, s)))));
 
     let norm = Normalizer::new(&m.normalization);
@@ -128,6 +128,14 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
             }
             bundle.features.run(batch).expect("features run");
             t.elapsed() / b as u32
+        }));
+    }
+
+    for &b in &sizes {
+        let input = Tensor::zero::<f32>(&[b, 3, p, p]).expect("tensor");
+        stages.push(measure(&format!("feature network only, per patch, batch {b}"), n, || {
+            let input = input.clone();
+            timed(|| drop(bundle.features.run(input).expect("features run"))) / b as u32
         }));
     }
 

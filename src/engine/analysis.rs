@@ -177,14 +177,24 @@ pub enum EngineError {
 /// Running estimates of what the next batch and the head will cost.
 struct CostModel {
     per_patch: BTreeMap<usize, f64>,
-    head: f64,
+    /// Fixed part of the head stage (its network run), from the load-time dry run.
+    head_base: f64,
+    /// Part of the head stage that grows with the patches examined (the Gaussian samples).
+    head_per_patch: f64,
 }
 
 impl CostModel {
     const KEEP: f64 = 0.7;
+    /// Safety factor on predicted costs: timing noise on a busy CPU is one-sided.
+    const MARGIN: f64 = 1.25;
 
     fn update(slot: &mut f64, observed: f64) {
         *slot = Self::KEEP * *slot + (1.0 - Self::KEEP) * observed;
+    }
+
+    /// Predicted head stage time after `k` patches.
+    fn head(&self, k: usize) -> f64 {
+        self.head_base + self.head_per_patch * k as f64
     }
 }
 
@@ -201,7 +211,7 @@ impl Engine {
     pub fn new(bundle: Arc<Bundle>) -> Self {
         let norm = Normalizer::new(&bundle.manifest.normalization);
         let per_patch = bundle.dry_run.per_patch.iter().map(|(b, t)| (*b, t.as_secs_f64())).collect();
-        let cost = CostModel { per_patch, head: bundle.dry_run.head.as_secs_f64() };
+        let cost = CostModel { per_patch, head_base: bundle.dry_run.head.as_secs_f64(), head_per_patch: 0.0 };
         Self { bundle, norm, cost, mask: None, mask_cache: None }
     }
 
@@ -277,7 +287,8 @@ impl Engine {
         let thresholds = settings.thresholds.as_ref().unwrap_or(&m.thresholds);
         let classes = summarise(&probs, &m.classes, thresholds, settings.interval);
         let head_time = t.elapsed();
-        CostModel::update(&mut self.cost.head, head_time.as_secs_f64());
+        let per = (head_time.as_secs_f64() - self.cost.head_base).max(0.0) / k as f64;
+        CostModel::update(&mut self.cost.head_per_patch, per);
         times.head = ms(head_time);
         let elapsed = start.elapsed();
         times.total = ms(elapsed);
@@ -349,8 +360,9 @@ impl Engine {
                 // Whole batches up to min_patches, even past the deadline (reported as an overrun).
                 *sizes.iter().rev().find(|&&b| fits(b)).expect("batch size 1 always fits")
             } else {
-                let left = deadline.saturating_duration_since(Instant::now()).as_secs_f64() - self.cost.head;
-                match sizes.iter().rev().find(|&&b| fits(b) && b as f64 * self.cost.per_patch.get(&b).copied().unwrap_or(f64::MAX) <= left) {
+                let left = deadline.saturating_duration_since(Instant::now()).as_secs_f64();
+                let cost = |b: usize| CostModel::MARGIN * (b as f64 * self.cost.per_patch.get(&b).copied().unwrap_or(f64::MAX) + self.cost.head(k + b));
+                match sizes.iter().rev().find(|&&b| fits(b) && cost(b) <= left) {
                     Some(&b) => b,
                     None => break StopReason::Budget,
                 }
