@@ -4,7 +4,10 @@
 //! [`source::Frame`]s, [`engine`] analyses a frame within a time budget and returns a
 //! [`engine::Report`], and the command layer writes reports out.
 
+pub mod config;
 pub mod demo;
 pub mod engine;
 pub mod onnx;
+pub mod service;
+pub mod sinks;
 pub mod source;

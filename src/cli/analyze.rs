@@ -69,7 +69,7 @@ impl EngineArgs {
     pub fn engine(&self) -> anyhow::Result<(Engine, Settings)> {
         let settings = self.settings();
         let bundle = Bundle::load(&self.bundle, &settings.batch_sizes())?;
-        settings.validate(bundle.manifest.classes.len()).map_err(|e| anyhow::anyhow!("{e}"))?;
+        settings.validate(Some(bundle.manifest.classes.len())).map_err(|e| anyhow::anyhow!("{e}"))?;
         let mut engine = Engine::new(Arc::new(bundle));
         if let Some(path) = &self.mask {
             engine.set_mask(Some(Mask::from_image_file(path).map_err(anyhow::Error::msg)?));

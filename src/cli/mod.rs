@@ -3,3 +3,4 @@
 pub mod analyze;
 pub mod bench;
 pub mod demo;
+pub mod run;

@@ -38,17 +38,20 @@ pub struct Settings {
     pub interval: f64,
     /// Per-class thresholds overriding the bundle's defaults.
     pub thresholds: Option<Vec<f64>>,
+    /// Base RNG seed: the daemon gives frame `n` the seed `seed + n`, recorded in its report.
+    pub seed: u64,
 }
 
 impl Default for Settings {
     fn default() -> Self {
-        Self { budget_ms: 100.0, estimator: EstimatorKind::Priority, min_patches: 4, max_patches: 256, batch: 8, samples: 64, interval: 0.9, thresholds: None }
+        Self { budget_ms: 100.0, estimator: EstimatorKind::Priority, min_patches: 4, max_patches: 256, batch: 8, samples: 64, interval: 0.9, thresholds: None, seed: 0 }
     }
 }
 
 impl Settings {
-    /// Checks the values; errors name the field and what was expected.
-    pub fn validate(&self, classes: usize) -> Result<(), String> {
+    /// Checks the values (and the threshold count when the class count is known); errors
+    /// name the field and what was expected.
+    pub fn validate(&self, classes: Option<usize>) -> Result<(), String> {
         if !(self.budget_ms > 0.0 && self.budget_ms.is_finite()) {
             return Err(format!("budget_ms = {}: expected a positive number of milliseconds", self.budget_ms));
         }
@@ -64,8 +67,11 @@ impl Settings {
         if !(self.interval > 0.0 && self.interval < 1.0) {
             return Err(format!("interval = {}: expected a level strictly between 0 and 1, e.g. 0.9", self.interval));
         }
+        if self.samples == 0 {
+            return Err("samples = 0: expected at least 1 Gaussian sample for the interval".into());
+        }
         if let Some(t) = &self.thresholds {
-            if t.len() != classes {
+            if let Some(classes) = classes.filter(|&c| c != t.len()) {
                 return Err(format!("thresholds: expected one per class ({classes}), found {}", t.len()));
             }
             if let Some(v) = t.iter().find(|v| !(0.0..=1.0).contains(*v)) {
@@ -243,7 +249,7 @@ impl Engine {
     pub fn analyze(&mut self, frame: &Frame, settings: &Settings, seed: u64) -> Result<Report, EngineError> {
         let bundle = self.bundle.clone();
         let m = &bundle.manifest;
-        settings.validate(m.classes.len()).map_err(EngineError::Settings)?;
+        settings.validate(Some(m.classes.len())).map_err(EngineError::Settings)?;
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
         let mut times = StageTimes::default();
         let (fw, fh) = (frame.width(), frame.height());

@@ -1,7 +1,60 @@
-//! Where frames come from.
+//! Where frames come from: decoding, and the source threads (folder, file list,
+//! generated scene, camera) that feed analysis through a bounded hand-over.
 
 pub mod decode;
+pub mod feed;
+pub mod files;
+pub mod folder;
 pub mod frame;
+pub mod scene;
+
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
+use std::thread::JoinHandle;
+use std::time::Duration;
+
+use crossbeam_channel::Receiver;
 
 pub use decode::{decode_bytes, decode_file, DecodeError, DEFAULT_MAX_PIXELS};
+pub use feed::{FrameError, Item, SourceCounters};
 pub use frame::Frame;
+
+use crate::config::{Config, Overload, SourceConfig};
+
+/// A running source thread and the receiving end of its feed.
+pub struct Running {
+    pub frames: Receiver<Item>,
+    pub thread: JoinHandle<()>,
+}
+
+/// Opens the configured source and starts its thread. Errors (a missing folder, a
+/// pattern matching nothing) are reported here, before the daemon says it is ready.
+pub fn start(cfg: &Config, counters: Arc<SourceCounters>, stop: Arc<AtomicBool>) -> Result<Running, String> {
+    let max_pixels = cfg.max_pixels;
+    let overload = match &cfg.source {
+        SourceConfig::Folder { overload, .. } | SourceConfig::Files { overload, .. } | SourceConfig::Scene { overload, .. } => *overload,
+        SourceConfig::Camera { .. } => Overload::DropOldest,
+    };
+    let (feed, frames) = feed::feed(overload, counters, stop);
+    let spawn = |name: &str, f: Box<dyn FnOnce() + Send>| std::thread::Builder::new().name(name.into()).spawn(f).map_err(|e| format!("cannot start the source thread: {e}"));
+    let thread = match cfg.source.clone() {
+        SourceConfig::Folder { path, after, move_to, stable_ms, poll_ms, .. } => {
+            if !path.is_dir() {
+                return Err(format!("[source] path {}: not a folder", path.display()));
+            }
+            let s = folder::FolderSource { dir: path, after, move_to, stable: Duration::from_millis(stable_ms), poll: Duration::from_millis(poll_ms), max_pixels };
+            spawn("source-folder", Box::new(move || s.run(feed)))?
+        }
+        SourceConfig::Files { paths, rate_fps, repeat, .. } => {
+            let files = files::expand(&paths).map_err(|e| format!("[source] {e}"))?;
+            let s = files::FilesSource { files, rate_fps, repeat, max_pixels };
+            spawn("source-files", Box::new(move || s.run(feed)))?
+        }
+        SourceConfig::Scene { width, height, fps, seed, count, .. } => {
+            let s = scene::SceneSource { width, height, fps, seed, count };
+            spawn("source-scene", Box::new(move || s.run(feed)))?
+        }
+        SourceConfig::Camera { device, .. } => return Err(format!("[source] camera {device}: this build has no camera support yet")),
+    };
+    Ok(Running { frames, thread })
+}

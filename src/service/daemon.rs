@@ -1,0 +1,118 @@
+//! `saccade run`: source thread → bounded feed → analysis (this thread) → bounded channel
+//! → sinks thread, until SIGTERM or SIGINT (or the end of a finite source). SIGHUP reloads
+//! the config: a bad new config is rejected, logged, and the running one kept.
+
+use std::path::Path;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use crossbeam_channel::RecvTimeoutError;
+
+use super::notify::Notifier;
+use crate::config::Config;
+use crate::engine::{Bundle, Engine, Mask};
+use crate::sinks::jsonl::JsonlLog;
+use crate::sinks::worker::{self, not_clear, SinkMsg};
+use crate::source::{self, SourceCounters};
+
+/// How often the loop wakes while idle, to ping the watchdog and notice signals.
+const TICK: Duration = Duration::from_millis(200);
+const STATUS_EVERY: Duration = Duration::from_secs(5);
+
+/// Loads everything, runs until stopped, and returns once all records are flushed.
+pub fn run(config_path: &Path) -> anyhow::Result<()> {
+    let mut cfg = Config::load(config_path)?;
+    let mut notify = Notifier::from_env();
+    let stop = Arc::new(AtomicBool::new(false));
+    let reload = Arc::new(AtomicBool::new(false));
+    for sig in [signal_hook::consts::SIGTERM, signal_hook::consts::SIGINT] {
+        signal_hook::flag::register(sig, stop.clone())?;
+    }
+    signal_hook::flag::register(signal_hook::consts::SIGHUP, reload.clone())?;
+
+    let bundle = Arc::new(Bundle::load(&cfg.bundle, &cfg.engine.batch_sizes())?);
+    cfg.engine.validate(Some(bundle.manifest.classes.len())).map_err(|e| anyhow::anyhow!("{}: [engine] {e}", config_path.display()))?;
+    let mut engine = Engine::new(bundle.clone());
+    engine.set_mask(cfg.mask().map_err(anyhow::Error::msg)?);
+    if let Some((w, h)) = cfg.frame_size() {
+        engine.prepare(w, h, &cfg.engine)?;
+    }
+    let log = JsonlLog::open(&cfg.log).map_err(|e| anyhow::anyhow!("{}: cannot open the detection log: {e}", cfg.log.path.display()))?;
+    let counters = Arc::new(SourceCounters::default());
+    let (sinks, sinks_thread) = worker::spawn(log, cfg.log.clone(), &cfg.evidence, counters.clone())?;
+    let source_stop = Arc::new(AtomicBool::new(false));
+    let running = source::start(&cfg, counters.clone(), source_stop.clone()).map_err(|e| anyhow::anyhow!("{}: {e}", config_path.display()))?;
+    log::info!("bundle {} ({} classes) and source up; log {}", bundle.manifest.name, bundle.manifest.classes.len(), cfg.log.path.display());
+    notify.ready("waiting for frames");
+
+    let (mut analysed, mut last_status, mut window_start, mut window_frames) = (0u64, Instant::now(), Instant::now(), 0u64);
+    loop {
+        notify.watchdog();
+        if stop.load(Ordering::Relaxed) {
+            log::info!("stop requested: finishing");
+            break;
+        }
+        if reload.swap(false, Ordering::Relaxed) {
+            match reload_config(config_path, &cfg, &bundle) {
+                Ok((new, mask)) => {
+                    engine.set_mask(mask);
+                    sinks.send(SinkMsg::Reconfigure { log: new.log.clone(), evidence: new.evidence.clone() }).ok();
+                    cfg = new;
+                    log::info!("{}: configuration reloaded", config_path.display());
+                }
+                Err(e) => log::error!("reload rejected, keeping the running configuration: {e}"),
+            }
+        }
+        let msg = match running.frames.recv_timeout(TICK) {
+            Ok(Ok(frame)) => {
+                let seed = cfg.engine.seed.wrapping_add(frame.seq);
+                match engine.analyze(&frame, &cfg.engine, seed) {
+                    Ok(report) => {
+                        analysed += 1;
+                        window_frames += 1;
+                        let image = (cfg.evidence.enabled && not_clear(&report)).then_some(frame.image);
+                        SinkMsg::Frame { report: Box::new(report), captured: frame.captured, image }
+                    }
+                    Err(e) => SinkMsg::BadFrame { origin: frame.origin, error: e.to_string() },
+                }
+            }
+            Ok(Err(bad)) => {
+                log::error!("{}", bad.message);
+                SinkMsg::BadFrame { origin: bad.origin, error: bad.message }
+            }
+            Err(RecvTimeoutError::Timeout) => continue,
+            Err(RecvTimeoutError::Disconnected) => {
+                log::info!("the source has no more frames");
+                break;
+            }
+        };
+        if sinks.send(msg).is_err() {
+            anyhow::bail!("the sinks thread has stopped");
+        }
+        if last_status.elapsed() >= STATUS_EVERY {
+            let fps = window_frames as f64 / window_start.elapsed().as_secs_f64();
+            notify.status(&format!("{fps:.1} frames/s, {analysed} analysed, {} dropped", counters.dropped.load(Ordering::Relaxed)));
+            (last_status, window_start, window_frames) = (Instant::now(), Instant::now(), 0);
+        }
+    }
+    notify.stopping();
+    source_stop.store(true, Ordering::Relaxed);
+    drop(running.frames);
+    running.thread.join().ok();
+    drop(sinks);
+    sinks_thread.join().map_err(|_| anyhow::anyhow!("the sinks thread panicked"))?;
+    log::info!("stopped after {analysed} frames; log flushed");
+    Ok(())
+}
+
+/// Loads the new config and checks it against what cannot change without a restart.
+fn reload_config(path: &Path, old: &Config, bundle: &Bundle) -> Result<(Config, Option<Mask>), String> {
+    let new = Config::load(path).map_err(|e| e.to_string())?;
+    new.engine.validate(Some(bundle.manifest.classes.len())).map_err(|e| format!("{}: [engine] {e}", path.display()))?;
+    if new.bundle != old.bundle || toml::to_string(&new.source).ok() != toml::to_string(&old.source).ok() || new.max_pixels != old.max_pixels {
+        return Err(format!("{}: bundle, max_pixels and [source] change only with a restart", path.display()));
+    }
+    let mask = new.mask().map_err(|e| format!("{}: [mask] {e}", path.display()))?;
+    Ok((new, mask))
+}

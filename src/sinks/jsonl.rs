@@ -1,0 +1,170 @@
+//! The detection log: JSON Lines appended a whole line per write, rotated by size.
+//!
+//! Each record is one `write` of a complete line to a file opened for appending, so a
+//! crash can leave at most the last line partial. On opening, a partial last line left by
+//! a crash is closed with a newline so that the next record starts on a line of its own;
+//! readers skip lines that do not parse (`jq -R 'fromjson?'`).
+
+use std::fs::{File, OpenOptions};
+use std::io::{Read, Seek, SeekFrom, Write};
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+use crate::config::{LogConfig, SyncPolicy};
+
+pub struct JsonlLog {
+    path: PathBuf,
+    file: File,
+    size: u64,
+    rotate_bytes: u64,
+    keep: usize,
+    sync: SyncPolicy,
+    sync_interval: Duration,
+    last_sync: Instant,
+    dirty: bool,
+}
+
+fn open_append(path: &Path) -> std::io::Result<(File, u64)> {
+    if let Some(dir) = path.parent() {
+        std::fs::create_dir_all(dir)?;
+    }
+    let mut file = OpenOptions::new().create(true).append(true).read(true).open(path)?;
+    let mut size = file.metadata()?.len();
+    if size > 0 {
+        let mut last = [0u8; 1];
+        file.seek(SeekFrom::End(-1))?;
+        file.read_exact(&mut last)?;
+        if last[0] != b'\n' {
+            file.write_all(b"\n")?;
+            size += 1;
+        }
+    }
+    Ok((file, size))
+}
+
+impl JsonlLog {
+    pub fn open(cfg: &LogConfig) -> std::io::Result<Self> {
+        let (file, size) = open_append(&cfg.path)?;
+        Ok(Self {
+            path: cfg.path.clone(),
+            file,
+            size,
+            rotate_bytes: (cfg.rotate_mb * 1024.0 * 1024.0) as u64,
+            keep: cfg.keep,
+            sync: cfg.sync,
+            sync_interval: Duration::from_secs_f64(cfg.sync_interval_s),
+            last_sync: Instant::now(),
+            dirty: false,
+        })
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// Appends one record; `line` must not contain a newline.
+    pub fn append(&mut self, line: &[u8]) -> std::io::Result<()> {
+        debug_assert!(!line.contains(&b'\n'));
+        let mut buf = Vec::with_capacity(line.len() + 1);
+        buf.extend_from_slice(line);
+        buf.push(b'\n');
+        if self.size > 0 && self.size + buf.len() as u64 > self.rotate_bytes {
+            self.rotate()?;
+        }
+        self.file.write_all(&buf)?;
+        self.size += buf.len() as u64;
+        self.dirty = true;
+        match self.sync {
+            SyncPolicy::Always => self.sync_now()?,
+            SyncPolicy::Interval if self.last_sync.elapsed() >= self.sync_interval => self.sync_now()?,
+            _ => {}
+        }
+        Ok(())
+    }
+
+    /// Forces written records to stable storage (always done at rotation and close).
+    pub fn sync_now(&mut self) -> std::io::Result<()> {
+        if self.dirty {
+            self.file.sync_data()?;
+            self.dirty = false;
+        }
+        self.last_sync = Instant::now();
+        Ok(())
+    }
+
+    fn rotated(&self, n: usize) -> PathBuf {
+        let mut s = self.path.clone().into_os_string();
+        s.push(format!(".{n}"));
+        PathBuf::from(s)
+    }
+
+    fn rotate(&mut self) -> std::io::Result<()> {
+        self.sync_now()?;
+        std::fs::remove_file(self.rotated(self.keep)).ok();
+        for n in (1..self.keep).rev() {
+            let from = self.rotated(n);
+            if from.exists() {
+                std::fs::rename(&from, self.rotated(n + 1))?;
+            }
+        }
+        std::fs::rename(&self.path, self.rotated(1))?;
+        let (file, size) = open_append(&self.path)?;
+        self.file = file;
+        self.size = size;
+        Ok(())
+    }
+}
+
+impl Drop for JsonlLog {
+    fn drop(&mut self) {
+        if let Err(e) = self.sync_now() {
+            log::error!("{}: final sync failed: {e}", self.path.display());
+        }
+    }
+}
+
+/// Reads the records of a log, skipping a partial or unparsable line, as a reader should.
+pub fn read_records(path: &Path) -> std::io::Result<Vec<serde_json::Value>> {
+    let text = std::fs::read_to_string(path)?;
+    Ok(text.lines().filter_map(|l| serde_json::from_str(l).ok()).collect())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn cfg(dir: &Path, rotate_mb: f64, keep: usize) -> LogConfig {
+        LogConfig { path: dir.join("log.jsonl"), records: crate::config::RecordPolicy::All, rotate_mb, keep, sync: SyncPolicy::Always, sync_interval_s: 1.0, health_interval_s: 60.0 }
+    }
+
+    #[test]
+    fn rotates_by_size_and_keeps_n_files() {
+        let dir = tempfile::tempdir().unwrap();
+        let c = cfg(dir.path(), 200.0 / (1024.0 * 1024.0), 2);
+        let mut log = JsonlLog::open(&c).unwrap();
+        for i in 0..40 {
+            log.append(format!("{{\"n\":{i},\"pad\":\"0123456789\"}}").as_bytes()).unwrap();
+        }
+        drop(log);
+        let sizes: Vec<u64> = ["log.jsonl", "log.jsonl.1", "log.jsonl.2"].iter().map(|f| std::fs::metadata(dir.path().join(f)).unwrap().len()).collect();
+        assert!(sizes.iter().all(|&s| s <= 200), "{sizes:?}");
+        assert!(!dir.path().join("log.jsonl.3").exists());
+        // The newest records are in the live file, in order, every line whole.
+        let live = read_records(&dir.path().join("log.jsonl")).unwrap();
+        assert_eq!(live.last().unwrap()["n"], 39);
+        let text = std::fs::read_to_string(dir.path().join("log.jsonl.1")).unwrap();
+        assert!(text.ends_with('\n') && text.lines().all(|l| serde_json::from_str::<serde_json::Value>(l).is_ok()));
+    }
+
+    #[test]
+    fn a_partial_last_line_is_closed_on_open() {
+        let dir = tempfile::tempdir().unwrap();
+        let c = cfg(dir.path(), 1.0, 2);
+        std::fs::write(&c.path, b"{\"n\":1}\n{\"n\":2,\"cut").unwrap();
+        let mut log = JsonlLog::open(&c).unwrap();
+        log.append(b"{\"n\":3}").unwrap();
+        drop(log);
+        let recs = read_records(&c.path).unwrap();
+        assert_eq!(recs.iter().map(|r| r["n"].as_i64().unwrap()).collect::<Vec<_>>(), vec![1, 3]);
+    }
+}

@@ -1,0 +1,167 @@
+//! The sinks thread: writes frame, error and health records to the detection log and
+//! evidence for frames that are not clear.
+
+use std::collections::VecDeque;
+use std::sync::atomic::Ordering;
+use std::sync::Arc;
+use std::thread::JoinHandle;
+use std::time::{Duration, Instant, SystemTime};
+
+use crossbeam_channel::{bounded, Receiver, RecvTimeoutError, Sender};
+use image::RgbImage;
+
+use super::evidence::Evidence;
+use super::jsonl::JsonlLog;
+use super::record::{rfc3339, ErrorRecord, FrameRecord, HealthRecord, Percentiles, SCHEMA};
+use crate::config::{EvidenceConfig, LogConfig, RecordPolicy};
+use crate::engine::{Outcome, Report};
+use crate::source::SourceCounters;
+
+pub enum SinkMsg {
+    Frame { report: Box<Report>, captured: SystemTime, image: Option<RgbImage> },
+    BadFrame { origin: String, error: String },
+    Reconfigure { log: LogConfig, evidence: EvidenceConfig },
+}
+
+/// Records waiting for a log that failed to write are kept, up to this many.
+const PENDING_MAX: usize = 10_000;
+
+struct Worker {
+    log: JsonlLog,
+    log_cfg: LogConfig,
+    evidence: Evidence,
+    counters: Arc<SourceCounters>,
+    started: Instant,
+    pending: VecDeque<Vec<u8>>,
+    analysed: u64,
+    errors: u64,
+    overruns: u64,
+    window_start: Instant,
+    window_ms: Vec<f64>,
+    window_age: Vec<f64>,
+}
+
+/// Whether a frame needs a person's look (any class not clear).
+pub fn not_clear(r: &Report) -> bool {
+    r.classes.iter().any(|c| c.outcome != Outcome::Clear)
+}
+
+/// Starts the sinks thread on an opened log; it ends when every sender is gone.
+pub fn spawn(log: JsonlLog, log_cfg: LogConfig, evidence: &EvidenceConfig, counters: Arc<SourceCounters>) -> std::io::Result<(Sender<SinkMsg>, JoinHandle<()>)> {
+    let (tx, rx) = bounded(8);
+    let now = Instant::now();
+    let mut w = Worker {
+        log,
+        log_cfg,
+        evidence: Evidence::open(evidence),
+        counters,
+        started: now,
+        pending: VecDeque::new(),
+        analysed: 0,
+        errors: 0,
+        overruns: 0,
+        window_start: now,
+        window_ms: vec![],
+        window_age: vec![],
+    };
+    let handle = std::thread::Builder::new().name("sinks".into()).spawn(move || w.run(rx))?;
+    Ok((tx, handle))
+}
+
+impl Worker {
+    fn run(&mut self, rx: Receiver<SinkMsg>) {
+        loop {
+            let due = self.window_start + Duration::from_secs_f64(self.log_cfg.health_interval_s);
+            match rx.recv_timeout(due.saturating_duration_since(Instant::now())) {
+                Ok(msg) => self.handle(msg),
+                Err(RecvTimeoutError::Timeout) => self.health(),
+                Err(RecvTimeoutError::Disconnected) => break,
+            }
+        }
+        self.health();
+        if let Err(e) = self.log.sync_now() {
+            log::error!("{}: final sync failed: {e}", self.log.path().display());
+        }
+        if !self.pending.is_empty() {
+            log::error!("{}: {} records could not be written before exit", self.log.path().display(), self.pending.len());
+        }
+    }
+
+    fn handle(&mut self, msg: SinkMsg) {
+        match msg {
+            SinkMsg::Frame { report, captured, image } => {
+                self.analysed += 1;
+                self.overruns += u64::from(!report.budget_met);
+                self.window_ms.push(report.times_ms.total);
+                let look = not_clear(&report);
+                if look {
+                    if let Some(img) = &image {
+                        let stem = format!("{}-{:06}", rfc3339(captured).replace(':', ""), report.seq);
+                        self.evidence.write(&report, img, &stem);
+                    }
+                }
+                let age_ms = SystemTime::now().duration_since(captured).unwrap_or_default().as_secs_f64() * 1000.0;
+                self.window_age.push(age_ms);
+                if look || self.log_cfg.records == RecordPolicy::All {
+                    let rec = FrameRecord { schema: SCHEMA, record: "frame", time: rfc3339(SystemTime::now()), captured: rfc3339(captured), age_ms, report: &report };
+                    self.write(serde_json::to_vec(&rec).expect("record serialises"));
+                }
+            }
+            SinkMsg::BadFrame { origin, error } => {
+                self.errors += 1;
+                let rec = ErrorRecord { schema: SCHEMA, record: "error", time: rfc3339(SystemTime::now()), origin: &origin, error: &error };
+                self.write(serde_json::to_vec(&rec).expect("record serialises"));
+            }
+            SinkMsg::Reconfigure { log, evidence } => {
+                if log.path != self.log_cfg.path || log.rotate_mb != self.log_cfg.rotate_mb || log.keep != self.log_cfg.keep || log.sync != self.log_cfg.sync || log.sync_interval_s != self.log_cfg.sync_interval_s {
+                    match JsonlLog::open(&log) {
+                        Ok(l) => self.log = l,
+                        Err(e) => log::error!("{}: cannot open the new log, keeping {}: {e}", log.path.display(), self.log.path().display()),
+                    }
+                }
+                self.log_cfg = log;
+                self.evidence = Evidence::open(&evidence);
+            }
+        }
+    }
+
+    /// Appends a record, first any that an earlier failure left waiting.
+    fn write(&mut self, line: Vec<u8>) {
+        self.pending.push_back(line);
+        while let Some(l) = self.pending.front() {
+            if let Err(e) = self.log.append(l) {
+                log::error!("{}: cannot write a record ({} waiting): {e}", self.log.path().display(), self.pending.len());
+                if self.pending.len() > PENDING_MAX {
+                    self.pending.pop_front();
+                    log::error!("{}: more than {PENDING_MAX} records waiting; the oldest was discarded", self.log.path().display());
+                }
+                return;
+            }
+            self.pending.pop_front();
+        }
+    }
+
+    fn health(&mut self) {
+        let secs = self.window_start.elapsed().as_secs_f64();
+        let rec = HealthRecord {
+            schema: SCHEMA,
+            record: "health",
+            time: rfc3339(SystemTime::now()),
+            uptime_s: self.started.elapsed().as_secs_f64(),
+            frames_in: self.counters.frames_in.load(Ordering::Relaxed),
+            analysed: self.analysed,
+            dropped: self.counters.dropped.load(Ordering::Relaxed),
+            errors: self.errors,
+            budget_overruns: self.overruns,
+            window_frames: self.window_ms.len() as u64,
+            frames_per_s: if secs > 0.0 { self.window_ms.len() as f64 / secs } else { 0.0 },
+            analysis_ms: Percentiles::of(&mut self.window_ms),
+            age_ms: Percentiles::of(&mut self.window_age),
+            evidence: self.evidence.enabled,
+        };
+        self.write(serde_json::to_vec(&rec).expect("record serialises"));
+        self.window_ms.clear();
+        self.window_age.clear();
+        self.window_start = Instant::now();
+    }
+}
