@@ -240,28 +240,29 @@ impl Default for EvidenceConfig {
 }
 
 #[derive(Debug, thiserror::Error)]
-#[error("{path}{}: {message}", line.map(|l| format!(":{l}")).unwrap_or_default())]
+#[error("{path}{}: {message}", at.map(|(l, c)| format!(":{l}:{c}")).unwrap_or_default())]
 pub struct ConfigError {
     pub path: PathBuf,
-    pub line: Option<usize>,
+    /// Line and column (1-based) of the offending key or value.
+    pub at: Option<(usize, usize)>,
     pub message: String,
 }
 
 impl Config {
     /// Reads, parses and checks a config file; relative paths become relative to its folder.
     pub fn load(path: &Path) -> Result<Self, ConfigError> {
-        let text = std::fs::read_to_string(path).map_err(|e| ConfigError { path: path.into(), line: None, message: format!("cannot read the config file: {e}") })?;
+        let text = std::fs::read_to_string(path).map_err(|e| ConfigError { path: path.into(), at: None, message: format!("cannot read the config file: {e}") })?;
         Self::parse(&text, path)
     }
 
     pub fn parse(text: &str, path: &Path) -> Result<Self, ConfigError> {
         let mut c: Config = toml::from_str(text).map_err(|e| {
-            let line = e.span().map(|s| text[..s.start].lines().count().max(1));
-            ConfigError { path: path.into(), line, message: e.message().to_string() }
+            let at = e.span().map(|s| position(text, s.start));
+            ConfigError { path: path.into(), at, message: e.message().to_string() }
         })?;
         let base = path.parent().unwrap_or(Path::new("."));
         c.resolve_paths(base);
-        c.check().map_err(|(key, message)| ConfigError { path: path.into(), line: locate(text, key), message })?;
+        c.check().map_err(|(key, message)| ConfigError { path: path.into(), at: locate(text, key), message })?;
         Ok(c)
     }
 
@@ -405,7 +406,22 @@ fn creatable(dir: &Path) -> Result<(), String> {
     Ok(())
 }
 
-/// Line (1-based) of the first `key = …` in the text.
-fn locate(text: &str, key: &str) -> Option<usize> {
-    text.lines().position(|l| l.trim_start().strip_prefix(key).is_some_and(|rest| rest.trim_start().starts_with('='))).map(|i| i + 1)
+/// Line and column (1-based) of a byte offset.
+fn position(text: &str, offset: usize) -> (usize, usize) {
+    let before = &text[..offset.min(text.len())];
+    let line_start = before.rfind('\n').map_or(0, |i| i + 1);
+    (before.matches('\n').count() + 1, before[line_start..].chars().count() + 1)
+}
+
+/// Line and column of the first `key = …` in the text.
+fn locate(text: &str, key: &str) -> Option<(usize, usize)> {
+    let mut offset = 0;
+    for l in text.split_inclusive('\n') {
+        let indent = l.len() - l.trim_start().len();
+        if l.trim_start().strip_prefix(key).is_some_and(|rest| rest.trim_start().starts_with('=')) {
+            return Some(position(text, offset + indent));
+        }
+        offset += l.len();
+    }
+    None
 }

@@ -7,6 +7,7 @@ pub mod files;
 pub mod folder;
 pub mod frame;
 pub mod scene;
+pub mod yuv;
 
 use std::sync::atomic::AtomicBool;
 use std::sync::Arc;

@@ -1,0 +1,351 @@
+//! `saccade run` as a process: sources, log integrity, signals, overload, notifications,
+//! unit files and config errors.
+
+mod common;
+
+use std::os::unix::net::UnixDatagram;
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+use saccade::config::Config;
+use saccade::demo::designed::DesignedParams;
+use saccade::demo::scene;
+use serde_json::Value;
+
+const BIN: &str = env!("CARGO_BIN_EXE_saccade");
+
+struct Setup {
+    dir: tempfile::TempDir,
+    _bundle: tempfile::TempDir,
+    bundle: PathBuf,
+}
+
+impl Setup {
+    fn new() -> Self {
+        let bundle = common::designed_bundle(&DesignedParams::default());
+        Self { bundle: bundle.path().to_path_buf(), _bundle: bundle, dir: tempfile::tempdir().unwrap() }
+    }
+
+    fn path(&self, p: &str) -> PathBuf {
+        self.dir.path().join(p)
+    }
+
+    fn log(&self) -> PathBuf {
+        self.path("log/detections.jsonl")
+    }
+
+    /// Writes a config with the given source and extra sections.
+    fn config(&self, source: &str, engine: &str, log_extra: &str) -> PathBuf {
+        let text = format!(
+            "bundle = {:?}\n\n[source]\n{source}\n\n[engine]\n{engine}\n\n[log]\npath = {:?}\n{log_extra}\n",
+            self.bundle.display().to_string(),
+            self.log().display().to_string()
+        );
+        let path = self.path("saccade.toml");
+        std::fs::write(&path, text).unwrap();
+        path
+    }
+
+    /// JPEG frames from the demo scene, written into `dir` (created).
+    fn frames(&self, dir: &str, n: usize, w: u32, h: u32) -> Vec<PathBuf> {
+        let d = self.path(dir);
+        std::fs::create_dir_all(&d).unwrap();
+        (0..n)
+            .map(|i| {
+                let p = d.join(format!("f{i:03}.jpg"));
+                scene::generate(w, h, 100 + i as u64, 2).image.save(&p).unwrap();
+                p
+            })
+            .collect()
+    }
+
+    fn spawn(&self, config: &Path, envs: &[(&str, &str)]) -> Child {
+        let mut c = Command::new(BIN);
+        c.args(["run", "--config", config.to_str().unwrap()]).stdout(Stdio::null()).stderr(std::fs::File::create(self.path("stderr.txt")).unwrap());
+        c.env_remove("NOTIFY_SOCKET").env_remove("WATCHDOG_USEC");
+        for (k, v) in envs {
+            c.env(k, v);
+        }
+        c.spawn().unwrap()
+    }
+
+    fn stderr(&self) -> String {
+        std::fs::read_to_string(self.path("stderr.txt")).unwrap_or_default()
+    }
+
+    fn records(&self) -> Vec<Value> {
+        saccade::sinks::jsonl::read_records(&self.log()).unwrap_or_default()
+    }
+}
+
+fn signal(child: &Child, sig: i32) {
+    assert_eq!(unsafe { libc::kill(child.id() as i32, sig) }, 0);
+}
+
+/// Polls until `f` holds or `secs` pass.
+fn wait_for(secs: u64, what: &str, mut f: impl FnMut() -> bool) {
+    let end = Instant::now() + Duration::from_secs(secs);
+    while !f() {
+        assert!(Instant::now() < end, "timed out waiting for {what}");
+        std::thread::sleep(Duration::from_millis(100));
+    }
+}
+
+fn stop(child: &mut Child) -> std::process::ExitStatus {
+    signal(child, libc::SIGTERM);
+    let end = Instant::now() + Duration::from_secs(30);
+    loop {
+        if let Some(s) = child.try_wait().unwrap() {
+            return s;
+        }
+        assert!(Instant::now() < end, "daemon did not stop after SIGTERM");
+        std::thread::sleep(Duration::from_millis(50));
+    }
+}
+
+fn kind(records: &[Value], k: &str) -> Vec<Value> {
+    records.iter().filter(|r| r["record"] == k).cloned().collect()
+}
+
+/// Validates the log with Python's `jsonschema` against the repository's schema.
+fn validate(log: &Path) -> Value {
+    let schema = Path::new(env!("CARGO_MANIFEST_DIR")).join("config/record.schema.json");
+    serde_json::from_str(&common::run_reference("validate_records.py", &[schema.to_str().unwrap(), log.to_str().unwrap()], "")).unwrap()
+}
+
+#[test]
+fn folder_source_end_to_end_with_bad_frames() {
+    let s = Setup::new();
+    let inbox = s.path("inbox");
+    std::fs::create_dir_all(&inbox).unwrap();
+    let staged = s.frames("staged", 6, 1024, 768);
+    let cfg = s.config(
+        &format!("kind = \"folder\"\npath = {:?}\nafter = \"move\"\nmove_to = {:?}\nstable_ms = 200\npoll_ms = 50\noverload = \"wait\"", inbox.display().to_string(), s.path("done").display().to_string()),
+        "budget_ms = 50",
+        "records = \"all\"\nsync = \"always\"",
+    );
+    let mut child = s.spawn(&cfg, &[]);
+    // Good frames arrive by rename into place, as a well-behaved producer does.
+    for p in &staged[..3] {
+        std::fs::rename(p, inbox.join(p.file_name().unwrap())).unwrap();
+    }
+    // Bad ones: corrupt, truncated, empty, and a header claiming 100 000 × 100 000 pixels.
+    let good = std::fs::read(inbox.join("f000.jpg")).unwrap();
+    let mut corrupt = good.clone();
+    let n = corrupt.len();
+    corrupt[20..n - 2].iter_mut().enumerate().for_each(|(k, b)| *b = (k * 31 % 251) as u8);
+    std::fs::write(inbox.join("corrupt.jpg"), corrupt).unwrap();
+    std::fs::write(inbox.join("truncated.jpg"), &good[..good.len() / 2]).unwrap();
+    std::fs::write(inbox.join("empty.jpg"), b"").unwrap();
+    std::fs::write(inbox.join("huge.pnm"), b"P6\n100000 100000\n255\n").unwrap();
+    // A partial write in progress under a temporary name is not taken.
+    std::fs::write(inbox.join("f900.jpg.part"), &good[..100]).unwrap();
+    // After the bad ones the daemon goes on.
+    wait_for(60, "the first frames", || kind(&s.records(), "error").len() == 4);
+    for p in &staged[3..] {
+        std::fs::rename(p, inbox.join(p.file_name().unwrap())).unwrap();
+    }
+    wait_for(60, "six frame records", || kind(&s.records(), "frame").len() == 6);
+    assert!(stop(&mut child).success(), "{}", s.stderr());
+
+    let recs = s.records();
+    let frames = kind(&recs, "frame");
+    let mut origins: Vec<String> = frames.iter().map(|r| Path::new(r["origin"].as_str().unwrap()).file_name().unwrap().to_string_lossy().into_owned()).collect();
+    origins.sort();
+    assert_eq!(origins, (0..6).map(|i| format!("f{i:03}.jpg")).collect::<Vec<_>>(), "one record per frame");
+    let errors: Vec<String> = kind(&recs, "error").iter().map(|r| format!("{} {}", r["origin"], r["error"])).collect();
+    for (name, why) in [("corrupt.jpg", "corrupt"), ("truncated.jpg", "truncated"), ("empty.jpg", "empty file"), ("huge.pnm", "over the limit")] {
+        assert!(errors.iter().any(|e| e.contains(name) && e.contains(why)), "{name}: {errors:?}");
+    }
+    assert_eq!(kind(&recs, "health").len(), 1, "a final health record at exit");
+    assert_eq!(kind(&recs, "health")[0]["errors"], 4);
+    // Used files were moved; the partial one was left alone.
+    let left: Vec<_> = std::fs::read_dir(&inbox).unwrap().map(|e| e.unwrap().file_name()).collect();
+    assert_eq!(left, vec![std::ffi::OsString::from("f900.jpg.part")]);
+    assert_eq!(std::fs::read_dir(s.path("done")).unwrap().count(), 10);
+
+    let v = validate(&s.log());
+    assert_eq!(v["problems"], Value::Array(vec![]), "{v}");
+    assert_eq!(v["records"], recs.len());
+    assert_eq!(v["partial_last_line"], false);
+    // The validator does check RFC 3339 times: a negative control.
+    let bad = s.path("bad.jsonl");
+    std::fs::write(&bad, serde_json::to_string(&recs[0]).unwrap().replace(recs[0]["time"].as_str().unwrap(), "2026-12-02 10:00") + "\n").unwrap();
+    assert_ne!(validate(&bad)["problems"], Value::Array(vec![]));
+}
+
+#[test]
+fn sighup_applies_a_good_config_and_keeps_the_old_one_on_a_bad_one() {
+    let s = Setup::new();
+    s.frames("frames", 2, 640, 480);
+    let source = format!("kind = \"files\"\npaths = [{:?}]\nrate_fps = 20\nrepeat = true", s.path("frames/*.jpg").display().to_string());
+    let cfg = s.config(&source, "budget_ms = 40", "");
+    let mut child = s.spawn(&cfg, &[]);
+    wait_for(60, "records at 40 ms", || kind(&s.records(), "frame").len() >= 3);
+    s.config(&source, "budget_ms = 45", "");
+    signal(&child, libc::SIGHUP);
+    wait_for(30, "records at 45 ms", || s.records().iter().any(|r| r["budget_ms"] == 45.0));
+    s.config(&source, "budget_ms = -3", "");
+    signal(&child, libc::SIGHUP);
+    wait_for(30, "the rejection", || s.stderr().contains("reload rejected"));
+    let before = kind(&s.records(), "frame").len();
+    wait_for(30, "records after the rejection", || kind(&s.records(), "frame").len() > before + 3);
+    assert!(stop(&mut child).success());
+    let err = s.stderr();
+    assert!(err.contains("budget_ms = -3") && err.contains("saccade.toml"), "{err}");
+    let frames = kind(&s.records(), "frame");
+    assert!(frames[before..].iter().all(|r| r["budget_ms"] == 45.0));
+    // SIGTERM flushed everything: the file ends with a complete line.
+    assert!(std::fs::read(s.log()).unwrap().ends_with(b"\n"));
+}
+
+#[test]
+fn kill_9_leaves_only_complete_lines_and_a_restart_goes_on() {
+    let s = Setup::new();
+    s.frames("frames", 3, 640, 480);
+    let source = format!("kind = \"files\"\npaths = [{:?}]\nrepeat = true", s.path("frames/*.jpg").display().to_string());
+    let cfg = s.config(&source, "budget_ms = 10\nmax_patches = 8", "sync = \"never\"");
+    for round in 0..3 {
+        let mut child = s.spawn(&cfg, &[]);
+        let before = s.records().len();
+        wait_for(60, "records", || s.records().len() > before + 20);
+        std::thread::sleep(Duration::from_millis(137 * round));
+        child.kill().unwrap(); // SIGKILL
+        child.wait().unwrap();
+        let text = std::fs::read_to_string(s.log()).unwrap();
+        let lines: Vec<&str> = text.split('\n').collect();
+        // Every complete line is valid JSON; only the last may be partial.
+        for l in &lines[..lines.len() - 1] {
+            assert!(serde_json::from_str::<Value>(l).is_ok(), "round {round}: bad line {l:?}");
+        }
+    }
+    let mut child = s.spawn(&cfg, &[]);
+    let before = s.records().len();
+    wait_for(60, "records after restart", || s.records().len() > before + 5);
+    assert!(stop(&mut child).success());
+    let v = validate(&s.log());
+    assert_eq!(v["problems"], Value::Array(vec![]), "{v}");
+}
+
+fn rss_kb(pid: u32) -> u64 {
+    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap();
+    status.lines().find(|l| l.starts_with("VmRSS:")).and_then(|l| l.split_whitespace().nth(1)).unwrap().parse().unwrap()
+}
+
+#[test]
+fn overload_drops_frames_keeps_memory_flat_and_age_bounded() {
+    let s = Setup::new();
+    s.frames("frames", 4, 800, 600);
+    // Frames offered at 100/s against about 20/s of analysis (50 ms budget, no patch cap).
+    let source = format!("kind = \"files\"\npaths = [{:?}]\nrate_fps = 100\nrepeat = true\noverload = \"drop_oldest\"", s.path("frames/*.jpg").display().to_string());
+    let cfg = s.config(&source, "budget_ms = 50\nmin_patches = 1\nmax_patches = 100000", "health_interval_s = 1\nrecords = \"not_clear\"");
+    let mut child = s.spawn(&cfg, &[]);
+    wait_for(60, "the first health record", || !kind(&s.records(), "health").is_empty());
+    std::thread::sleep(Duration::from_secs(2));
+    let early = rss_kb(child.id());
+    std::thread::sleep(Duration::from_secs(6));
+    let late = rss_kb(child.id());
+    assert!(stop(&mut child).success());
+    // Flat: a queue that kept every frame would grow by about 1.4 MB per frame, 100 per second.
+    assert!(late < early + 20_000, "RSS grew from {early} kB to {late} kB");
+    let health = kind(&s.records(), "health");
+    let last = health.last().unwrap();
+    let (analysed, dropped) = (last["analysed"].as_u64().unwrap(), last["dropped"].as_u64().unwrap());
+    assert!(dropped > analysed, "dropped {dropped}, analysed {analysed}");
+    // Bounded: at most one frame waits, so age stays near one analysis; an unbounded
+    // queue would have aged frames by seconds after this long.
+    for h in &health[1..health.len() - 1] {
+        assert!(h["age_ms"]["p99"].as_f64().unwrap() < 2000.0, "{h}");
+    }
+}
+
+#[test]
+fn notifies_ready_watchdog_status_and_stopping() {
+    let s = Setup::new();
+    s.frames("frames", 2, 640, 480);
+    let sock_path = s.path("notify.sock");
+    let sock = UnixDatagram::bind(&sock_path).unwrap();
+    sock.set_read_timeout(Some(Duration::from_millis(200))).unwrap();
+    let source = format!("kind = \"files\"\npaths = [{:?}]\nrate_fps = 5\nrepeat = true", s.path("frames/*.jpg").display().to_string());
+    let cfg = s.config(&source, "budget_ms = 20", "");
+    let mut child = s.spawn(&cfg, &[("NOTIFY_SOCKET", sock_path.to_str().unwrap()), ("WATCHDOG_USEC", "500000")]);
+    let mut msgs = Vec::new();
+    let mut buf = [0u8; 4096];
+    let end = Instant::now() + Duration::from_secs(7);
+    while Instant::now() < end {
+        if let Ok(n) = sock.recv(&mut buf) {
+            msgs.push(String::from_utf8_lossy(&buf[..n]).into_owned());
+        }
+    }
+    signal(&child, libc::SIGTERM);
+    while let Ok(n) = sock.recv(&mut buf) {
+        msgs.push(String::from_utf8_lossy(&buf[..n]).into_owned());
+    }
+    assert!(child.wait().unwrap().success());
+    // sd_notify(3): newline-separated assignments; READY=1 first, STOPPING=1 at the end.
+    assert!(msgs[0].lines().any(|l| l == "READY=1"), "{msgs:?}");
+    let pings = msgs.iter().filter(|m| m.lines().any(|l| l == "WATCHDOG=1")).count();
+    assert!(pings >= 5, "{pings} watchdog pings in 7 s at a 0.5 s watchdog: {msgs:?}");
+    assert!(msgs.iter().any(|m| m.starts_with("STATUS=") && m.contains("frames/s") && m.contains("dropped")), "{msgs:?}");
+    assert!(msgs.last().unwrap().lines().any(|l| l == "STOPPING=1"), "{msgs:?}");
+}
+
+#[test]
+fn unit_files_pass_systemd_analyze_verify() {
+    let dir = tempfile::tempdir().unwrap();
+    let units = Path::new(env!("CARGO_MANIFEST_DIR")).join("systemd");
+    // verify checks that ExecStart exists, so point the units at the built binary.
+    for (from, to) in [("saccade.service", "saccade.service"), ("saccade@.service", "saccade@mast-north.service")] {
+        let text = std::fs::read_to_string(units.join(from)).unwrap().replace("/usr/local/bin/saccade", BIN);
+        std::fs::write(dir.path().join(to), text).unwrap();
+    }
+    let out = Command::new("systemd-analyze")
+        .arg("verify")
+        .args(["saccade.service", "saccade@mast-north.service"].map(|u| dir.path().join(u)))
+        .output()
+        .expect("systemd-analyze (Debian package systemd; tests/run installs it)");
+    let text = format!("{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+    assert!(out.status.success() && text.trim().is_empty(), "systemd-analyze verify: {text}");
+}
+
+#[test]
+fn config_errors_name_file_line_and_field() {
+    let s = Setup::new();
+    let cfg = s.config("kind = \"scene\"", "budget_ms = 100", "");
+    let text = std::fs::read_to_string(&cfg).unwrap();
+    let err = |t: &str| Config::parse(t, &cfg).unwrap_err().to_string();
+    let line_of = |t: &str, key: &str| t.lines().position(|l| l.starts_with(key)).unwrap() + 1;
+
+    let t = text.replace("budget_ms = 100", "budget_ms = 100\nbudget = 3");
+    let e = err(&t);
+    assert!(e.contains(&format!("saccade.toml:{}:1:", line_of(&t, "budget ="))) && e.contains("unknown field `budget`"), "{e}");
+    let t = text.replace("budget_ms = 100", "budget_ms = \"fast\"");
+    let e = err(&t);
+    assert!(e.contains(&format!(":{}:13:", line_of(&t, "budget_ms"))) && e.contains("invalid type"), "{e}");
+    let t = text.replace("budget_ms = 100", "budget_ms = 0");
+    let e = err(&t);
+    assert!(e.contains(&format!(":{}:1:", line_of(&t, "budget_ms"))) && e.contains("budget_ms = 0"), "{e}");
+    let t = text.replace("kind = \"scene\"", "kind = \"folder\"\npath = \"/nonexistent/inbox\"");
+    assert!(err(&t).contains("not a folder"));
+    let t = format!("{text}\n[mask]\nignore = [{{ x = 2400, y = 0, width = 100, height = 10 }}]\n");
+    assert!(err(&t).contains("outside the 2448×2048 frame"), "{}", err(&t));
+    assert!(Config::parse(&text, &cfg).is_ok());
+}
+
+#[test]
+fn shipped_configs_parse_and_check_prints_the_effective_config() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    // The reference lists every key: it must deserialise (unknown keys would fail).
+    let text = std::fs::read_to_string(root.join("config/saccade.toml")).unwrap();
+    let c: Config = toml::from_str(&text).unwrap();
+    assert_eq!(c.log.keep, 5);
+    let s = Setup::new();
+    s.frames("frames", 1, 320, 240);
+    let cfg = s.config(&format!("kind = \"files\"\npaths = [{:?}]", s.path("frames/*.jpg").display().to_string()), "", "");
+    let out = Command::new(BIN).args(["check", "--config", cfg.to_str().unwrap()]).output().unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let effective: Config = toml::from_str(&String::from_utf8(out.stdout).unwrap()).unwrap();
+    assert_eq!((effective.engine.budget_ms, effective.engine.max_patches, effective.log.rotate_mb), (100.0, 256, 64.0));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("first frame"));
+}
