@@ -193,6 +193,9 @@ impl CostModel {
     const KEEP: f64 = 0.7;
     /// Safety factor on predicted costs: timing noise on a busy CPU is one-sided.
     const MARGIN: f64 = 1.25;
+    /// Share of the budget held back for what the model does not predict (scheduling,
+    /// cache misses on the last batch).
+    const SLACK: f64 = 0.02;
 
     fn update(slot: &mut f64, observed: f64) {
         *slot = Self::KEEP * *slot + (1.0 - Self::KEEP) * observed;
@@ -349,6 +352,7 @@ impl Engine {
         let bundle = self.bundle.clone();
         let (p, d) = (bundle.manifest.patch_size as usize, bundle.manifest.feature_dim);
         let exhaustive = plan.kind() == EstimatorKind::Exhaustive;
+        let slack = CostModel::SLACK * s.budget_ms / 1000.0;
         let limit = if exhaustive { plan.len() } else { plan.len().min(s.max_patches) };
         let sizes = s.batch_sizes();
         let mut feats = Vec::with_capacity(limit * d);
@@ -366,7 +370,7 @@ impl Engine {
                 // Whole batches up to min_patches, even past the deadline (reported as an overrun).
                 *sizes.iter().rev().find(|&&b| fits(b)).expect("batch size 1 always fits")
             } else {
-                let left = deadline.saturating_duration_since(Instant::now()).as_secs_f64();
+                let left = deadline.saturating_duration_since(Instant::now()).as_secs_f64() - slack;
                 let cost = |b: usize| CostModel::MARGIN * (b as f64 * self.cost.per_patch.get(&b).copied().unwrap_or(f64::MAX) + self.cost.head(k + b));
                 match sizes.iter().rev().find(|&&b| fits(b) && cost(b) <= left) {
                     Some(&b) => b,

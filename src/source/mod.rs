@@ -1,6 +1,8 @@
 //! Where frames come from: decoding, and the source threads (folder, file list,
 //! generated scene, camera) that feed analysis through a bounded hand-over.
 
+#[cfg(feature = "camera")]
+pub mod camera;
 pub mod decode;
 pub mod feed;
 pub mod files;
@@ -55,7 +57,14 @@ pub fn start(cfg: &Config, counters: Arc<SourceCounters>, stop: Arc<AtomicBool>)
             let s = scene::SceneSource { width, height, fps, seed, count };
             spawn("source-scene", Box::new(move || s.run(feed)))?
         }
-        SourceConfig::Camera { device, .. } => return Err(format!("[source] camera {device}: this build has no camera support yet")),
+        #[cfg(feature = "camera")]
+        SourceConfig::Camera { device, width, height, fps, formats } => {
+            camera::device_index(&device).map_err(|e| format!("[source] {e}"))?;
+            let s = camera::CameraSource { device, width, height, fps, formats, max_pixels };
+            spawn("source-camera", Box::new(move || s.run(feed)))?
+        }
+        #[cfg(not(feature = "camera"))]
+        SourceConfig::Camera { device, .. } => return Err(format!("[source] camera {device}: this build has no camera support (cargo feature \"camera\")")),
     };
     Ok(Running { frames, thread })
 }
