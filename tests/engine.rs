@@ -236,3 +236,33 @@ fn bad_settings_are_refused() {
     let err = e.analyze(&frame, &Settings { budget_ms: -1.0, ..Settings::default() }, 1).unwrap_err().to_string();
     assert!(err.contains("budget_ms"), "{err}");
 }
+
+#[test]
+fn evidence_keeps_its_quota_and_switches_off_when_it_cannot_write() {
+    use saccade::config::EvidenceConfig;
+    use saccade::sinks::evidence::Evidence;
+    let (_d, mut e) = engine(&DesignedParams::default());
+    let frame = sheet_with_spot(640, 480, 400, 200, 6);
+    let s = Settings { budget_ms: 10_000.0, min_patches: 16, max_patches: 16, ..Settings::default() };
+    let report = e.analyze(&frame, &s, 1).unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = EvidenceConfig { enabled: true, dir: dir.path().join("ev"), quota_mb: 0.05, max_age_hours: 1.0, crops: 3 };
+    let mut ev = Evidence::open(&cfg);
+    let first = ev.write(&report, &frame.image, "a");
+    assert_eq!(first.len(), 4, "overview and three crops");
+    let overview = image::open(&first[0]).unwrap();
+    assert_eq!((overview.width(), overview.height()), (80, 60), "the thumbnail's size");
+    for n in 0..100 {
+        ev.write(&report, &frame.image, &format!("f{n}"));
+    }
+    let on_disk: u64 = std::fs::read_dir(&cfg.dir).unwrap().map(|f| f.unwrap().metadata().unwrap().len()).sum();
+    assert!(on_disk <= 50 * 1024 + 1024 && on_disk == ev.total_bytes(), "{on_disk} bytes kept");
+    assert!(!cfg.dir.join("a-overview.png").exists(), "the oldest went first");
+    assert!(ev.enabled);
+    // A folder that cannot exist (its parent is a file) disables evidence, without panic.
+    std::fs::write(dir.path().join("file"), b"x").unwrap();
+    let bad = EvidenceConfig { dir: dir.path().join("file/ev"), ..cfg };
+    let mut ev = Evidence::open(&bad);
+    assert!(!ev.enabled);
+    assert!(ev.write(&report, &frame.image, "b").is_empty());
+}

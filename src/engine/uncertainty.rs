@@ -96,16 +96,13 @@ pub fn summarise(probs: &[f64], names: &[String], thresholds: &[f64], level: f64
         .map(|k| {
             let point = probs[k];
             let mut s: Vec<f64> = (1..n).map(|r| probs[r * c + k]).collect();
-            let (spread, interval) = if s.is_empty() {
-                (0.0, [point, point])
-            } else {
-                s.sort_by(f64::total_cmp);
-                let mean = s.iter().sum::<f64>() / s.len() as f64;
-                let var = s.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / s.len().max(2).saturating_sub(1) as f64;
-                let tail = (1.0 - level) / 2.0;
-                // The point estimate always lies inside its own interval.
-                (var.sqrt(), [quantile(&s, tail).min(point), quantile(&s, 1.0 - tail).max(point)])
-            };
+            assert!(!s.is_empty(), "at least one Gaussian sample (Settings::validate refuses samples = 0)");
+            s.sort_by(f64::total_cmp);
+            let mean = s.iter().sum::<f64>() / s.len() as f64;
+            let var = s.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (s.len().max(2) - 1) as f64;
+            let tail = (1.0 - level) / 2.0;
+            // The point estimate always lies inside its own interval.
+            let (spread, interval) = (var.sqrt(), [quantile(&s, tail).min(point), quantile(&s, 1.0 - tail).max(point)]);
             let t = thresholds[k];
             let outcome = if interval[0] > t {
                 Outcome::Detected

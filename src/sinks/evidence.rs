@@ -5,7 +5,7 @@
 //! log is never affected.
 
 use std::collections::VecDeque;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::time::{Duration, SystemTime};
 
 use image::{Rgb, RgbImage};
@@ -110,10 +110,6 @@ impl Evidence {
 
     pub fn total_bytes(&self) -> u64 {
         self.total
-    }
-
-    pub fn dir(&self) -> &Path {
-        &self.dir
     }
 }
 
