@@ -178,7 +178,7 @@ pub enum SyncPolicy {
     Always,
 }
 
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct LogConfig {
     /// The JSON Lines detection log.
@@ -373,6 +373,11 @@ impl Config {
             }
         }
         Ok(())
+    }
+
+    /// Checks what depends on the loaded bundle: one threshold per class.
+    pub fn check_bundle(&self, path: &Path, bundle: &crate::engine::Bundle) -> Result<(), String> {
+        self.engine.validate(Some(bundle.manifest.classes.len())).map_err(|e| format!("{}: [engine] {e}", path.display()))
     }
 
     /// The frame size when the source fixes it in the config.

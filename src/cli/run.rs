@@ -28,7 +28,7 @@ pub fn run(args: ConfigArgs) -> anyhow::Result<ExitCode> {
 pub fn check(args: ConfigArgs) -> anyhow::Result<ExitCode> {
     let cfg = Config::load(&args.config)?;
     let bundle = Bundle::load(&cfg.bundle, &cfg.engine.batch_sizes())?;
-    cfg.engine.validate(Some(bundle.manifest.classes.len())).map_err(|e| anyhow::anyhow!("{}: [engine] {e}", args.config.display()))?;
+    cfg.check_bundle(&args.config, &bundle).map_err(anyhow::Error::msg)?;
     let stop = Arc::new(AtomicBool::new(false));
     let running = source::start(&cfg, Arc::new(SourceCounters::default()), stop.clone()).map_err(|e| anyhow::anyhow!("{}: {e}", args.config.display()))?;
     let opened = match &cfg.source {

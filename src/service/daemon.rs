@@ -32,7 +32,7 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     signal_hook::flag::register(signal_hook::consts::SIGHUP, reload.clone())?;
 
     let bundle = Arc::new(Bundle::load(&cfg.bundle, &cfg.engine.batch_sizes())?);
-    cfg.engine.validate(Some(bundle.manifest.classes.len())).map_err(|e| anyhow::anyhow!("{}: [engine] {e}", config_path.display()))?;
+    cfg.check_bundle(config_path, &bundle).map_err(anyhow::Error::msg)?;
     let mut engine = Engine::new(bundle.clone());
     engine.set_mask(cfg.mask().map_err(anyhow::Error::msg)?);
     if let Some((w, h)) = cfg.frame_size() {
@@ -109,7 +109,7 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
 /// Loads the new config and checks it against what cannot change without a restart.
 fn reload_config(path: &Path, old: &Config, bundle: &Bundle) -> Result<(Config, Option<Mask>), String> {
     let new = Config::load(path).map_err(|e| e.to_string())?;
-    new.engine.validate(Some(bundle.manifest.classes.len())).map_err(|e| format!("{}: [engine] {e}", path.display()))?;
+    new.check_bundle(path, bundle)?;
     if new.bundle != old.bundle || toml::to_string(&new.source).ok() != toml::to_string(&old.source).ok() || new.max_pixels != old.max_pixels {
         return Err(format!("{}: bundle, max_pixels and [source] change only with a restart", path.display()));
     }

@@ -113,7 +113,7 @@ impl Worker {
                 self.write(serde_json::to_vec(&rec).expect("record serialises"));
             }
             SinkMsg::Reconfigure { log, evidence } => {
-                if log.path != self.log_cfg.path || log.rotate_mb != self.log_cfg.rotate_mb || log.keep != self.log_cfg.keep || log.sync != self.log_cfg.sync || log.sync_interval_s != self.log_cfg.sync_interval_s {
+                if log != self.log_cfg {
                     match JsonlLog::open(&log) {
                         Ok(l) => self.log = l,
                         Err(e) => log::error!("{}: cannot open the new log, keeping {}: {e}", log.path.display(), self.log.path().display()),
