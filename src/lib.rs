@@ -7,6 +7,7 @@
 pub mod config;
 pub mod demo;
 pub mod engine;
+pub mod eval;
 pub mod onnx;
 pub mod service;
 pub mod sinks;

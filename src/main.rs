@@ -17,6 +17,7 @@ enum Command {
     Analyze(cli::analyze::AnalyzeArgs),
     Demo(cli::demo::DemoArgs),
     Bench(cli::bench::BenchArgs),
+    Sweep(cli::sweep::SweepArgs),
     Run(cli::run::ConfigArgs),
     Check(cli::run::ConfigArgs),
 }
@@ -54,6 +55,7 @@ fn main() -> ExitCode {
         Command::Analyze(a) => cli::analyze::run(a),
         Command::Demo(a) => cli::demo::run(a),
         Command::Bench(a) => cli::bench::run(a),
+        Command::Sweep(a) => cli::sweep::run(a),
         Command::Run(a) => cli::run::run(a),
         Command::Check(a) => cli::run::check(a),
     };

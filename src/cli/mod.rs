@@ -4,3 +4,4 @@ pub mod analyze;
 pub mod bench;
 pub mod demo;
 pub mod run;
+pub mod sweep;

@@ -1,0 +1,191 @@
+//! One sweep row from the analyses it collected: quality against the labels, coverage
+//! of the stated intervals against the exhaustive answer, cost and deadline misses.
+//!
+//! Analyses over several seeds are pooled: each (frame, seed) is one more row of the
+//! truth and prediction matrices, so F1 and ECE are over every analysis, not a mean of
+//! per-seed scores.
+
+use serde::Serialize;
+
+use super::metrics;
+use crate::engine::{EstimatorKind, Outcome, Report};
+use crate::sinks::record::Percentiles;
+
+/// What a row measures.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum RowKind {
+    /// The engine under one time budget.
+    Budget,
+    /// Every cell at full resolution (the dense answer; ignores the budget).
+    Exhaustive,
+    /// The bundle's baseline network on the thumbnail alone.
+    ThumbnailOnly,
+}
+
+impl RowKind {
+    pub fn name(&self) -> &'static str {
+        match self {
+            Self::Budget => "budget",
+            Self::Exhaustive => "exhaustive",
+            Self::ThumbnailOnly => "thumbnail-only",
+        }
+    }
+}
+
+#[derive(Clone, Debug, Serialize)]
+pub struct Row {
+    pub row: RowKind,
+    /// The budget of a `budget` row.
+    pub budget_ms: Option<f64>,
+    /// Estimator of the engine rows; none for thumbnail-only.
+    pub estimator: Option<EstimatorKind>,
+    /// Analyses pooled (frames × seeds).
+    pub analyses: usize,
+    pub macro_f1: f64,
+    pub per_class_f1: Vec<f64>,
+    pub ece: f64,
+    /// Share of (analysis, class) whose interval holds the exhaustive probability.
+    pub coverage: Option<f64>,
+    pub mean_patches: Option<f64>,
+    /// Analysis time percentiles (nearest rank): the budgeted part, thumbnail to head, for
+    /// engine rows; thumbnail plus network for thumbnail-only.
+    pub p50_ms: f64,
+    pub p99_ms: f64,
+    /// Analyses whose budgeted part ran past the budget (budget rows only).
+    pub deadline_misses: Option<usize>,
+    pub deadline_miss_pct: Option<f64>,
+    /// (analysis, class) pairs whose outcome was `review` (engine rows).
+    pub reviews: Option<usize>,
+}
+
+/// Collects the analyses of one row.
+#[derive(Default)]
+pub struct Tally {
+    truth: Vec<Vec<bool>>,
+    probs: Vec<Vec<f64>>,
+    intervals: Vec<Vec<[f64; 2]>>,
+    reference: Vec<Vec<f64>>,
+    patches: usize,
+    times_ms: Vec<f64>,
+    misses: usize,
+    reviews: usize,
+}
+
+impl Tally {
+    /// One engine analysis of a frame labelled `truth`; `reference` is the exhaustive
+    /// probability of each class on the same frame.
+    pub fn add_report(&mut self, r: &Report, truth: &[bool], reference: &[f64]) {
+        self.truth.push(truth.to_vec());
+        self.probs.push(r.classes.iter().map(|c| c.probability).collect());
+        self.intervals.push(r.classes.iter().map(|c| c.interval).collect());
+        self.reference.push(reference.to_vec());
+        self.patches += r.patch_count;
+        self.times_ms.push(r.times_ms.total);
+        self.misses += !r.budget_met as usize;
+        self.reviews += r.classes.iter().filter(|c| c.outcome == Outcome::Review).count();
+    }
+
+    /// One thumbnail-only answer, with the time it took.
+    pub fn add_probabilities(&mut self, probs: &[f64], truth: &[bool], ms: f64) {
+        self.truth.push(truth.to_vec());
+        self.probs.push(probs.to_vec());
+        self.times_ms.push(ms);
+    }
+
+    pub fn len(&self) -> usize {
+        self.truth.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.truth.is_empty()
+    }
+
+    /// The row: predictions are `probability >= threshold` per class; ECE over `bins`
+    /// equal-width bins.
+    pub fn finish(mut self, row: RowKind, budget_ms: Option<f64>, estimator: Option<EstimatorKind>, thresholds: &[f64], bins: usize) -> Row {
+        let n = self.truth.len();
+        let f = metrics::f1(&self.truth, &metrics::predict(&self.probs, thresholds));
+        let engine = row != RowKind::ThumbnailOnly;
+        let pct = Percentiles::of(&mut self.times_ms);
+        Row {
+            row,
+            budget_ms,
+            estimator,
+            analyses: n,
+            macro_f1: f.macro_f1,
+            per_class_f1: f.per_class,
+            ece: metrics::ece(&self.probs, &self.truth, bins),
+            coverage: engine.then(|| metrics::coverage(&self.intervals, &self.reference)),
+            mean_patches: engine.then(|| self.patches as f64 / n.max(1) as f64),
+            p50_ms: pct.p50,
+            p99_ms: pct.p99,
+            deadline_misses: (row == RowKind::Budget).then_some(self.misses),
+            deadline_miss_pct: (row == RowKind::Budget).then(|| 100.0 * self.misses as f64 / n.max(1) as f64),
+            reviews: engine.then_some(self.reviews),
+        }
+    }
+}
+
+/// Budget rows whose macro F1 is within `tolerance_points` F1 points (hundredths) of the
+/// exhaustive row's, smallest budget first (none without an exhaustive row).
+pub fn within_tolerance(rows: &[Row], tolerance_points: f64) -> Vec<&Row> {
+    let Some(exhaustive) = rows.iter().find(|r| r.row == RowKind::Exhaustive) else { return Vec::new() };
+    let floor = exhaustive.macro_f1 - tolerance_points / 100.0;
+    let mut v: Vec<&Row> = rows.iter().filter(|r| r.row == RowKind::Budget && r.macro_f1 >= floor - 1e-12).collect();
+    v.sort_by(|a, b| a.budget_ms.unwrap_or(f64::INFINITY).total_cmp(&b.budget_ms.unwrap_or(f64::INFINITY)));
+    v
+}
+
+/// The recommended budget: the smallest within tolerance that also held its deadline in
+/// all but at most `max_miss_pct` % of analyses. A budget that is mostly overrun (where
+/// `min_patches` alone takes longer) would be met by nothing the daemon does and would
+/// count every frame as an overrun.
+pub fn recommend(rows: &[Row], tolerance_points: f64, max_miss_pct: f64) -> Option<&Row> {
+    within_tolerance(rows, tolerance_points).into_iter().find(|r| r.deadline_miss_pct.unwrap_or(0.0) <= max_miss_pct)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn row(kind: RowKind, budget: Option<f64>, f1: f64) -> Row {
+        Row {
+            row: kind,
+            budget_ms: budget,
+            estimator: None,
+            analyses: 1,
+            macro_f1: f1,
+            per_class_f1: vec![f1],
+            ece: 0.0,
+            coverage: None,
+            mean_patches: None,
+            p50_ms: 0.0,
+            p99_ms: 0.0,
+            deadline_misses: None,
+            deadline_miss_pct: None,
+            reviews: None,
+        }
+    }
+
+    #[test]
+    fn recommends_the_smallest_budget_within_tolerance() {
+        let rows = vec![
+            row(RowKind::Budget, Some(100.0), 0.80),
+            row(RowKind::Budget, Some(25.0), 0.60),
+            row(RowKind::Budget, Some(50.0), 0.785),
+            row(RowKind::Exhaustive, None, 0.80),
+        ];
+        assert_eq!(recommend(&rows, 2.0, 5.0).unwrap().budget_ms, Some(50.0));
+        assert_eq!(recommend(&rows, 1.0, 5.0).unwrap().budget_ms, Some(100.0));
+        assert_eq!(within_tolerance(&rows, 30.0).iter().map(|r| r.budget_ms.unwrap()).collect::<Vec<_>>(), vec![25.0, 50.0, 100.0]);
+        assert_eq!(recommend(&rows[..3], 2.0, 5.0).map(|r| r.budget_ms), None, "no exhaustive row, no recommendation");
+        let low = [row(RowKind::Budget, Some(25.0), 0.5), row(RowKind::Exhaustive, None, 0.8)];
+        assert!(recommend(&low, 2.0, 5.0).is_none());
+        // A budget that is mostly overrun is passed over for the next one.
+        let mut rows = rows;
+        rows[2].deadline_miss_pct = Some(40.0);
+        assert_eq!(recommend(&rows, 2.0, 5.0).unwrap().budget_ms, Some(100.0));
+        assert_eq!(recommend(&rows, 2.0, 50.0).unwrap().budget_ms, Some(50.0));
+    }
+}
