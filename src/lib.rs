@@ -8,7 +8,10 @@ pub mod config;
 pub mod demo;
 pub mod engine;
 pub mod eval;
+pub mod labels;
 pub mod onnx;
 pub mod service;
 pub mod sinks;
 pub mod source;
+#[cfg(feature = "train")]
+pub mod train;

@@ -18,6 +18,9 @@ enum Command {
     Demo(cli::demo::DemoArgs),
     Bench(cli::bench::BenchArgs),
     Sweep(cli::sweep::SweepArgs),
+    Scene(cli::scene::SceneArgs),
+    #[cfg(feature = "train")]
+    Train(cli::train::TrainArgs),
     Run(cli::run::ConfigArgs),
     Check(cli::run::ConfigArgs),
 }
@@ -56,6 +59,9 @@ fn main() -> ExitCode {
         Command::Demo(a) => cli::demo::run(a),
         Command::Bench(a) => cli::bench::run(a),
         Command::Sweep(a) => cli::sweep::run(a),
+        Command::Scene(a) => cli::scene::run(a),
+        #[cfg(feature = "train")]
+        Command::Train(a) => cli::train::run(a),
         Command::Run(a) => cli::run::run(a),
         Command::Check(a) => cli::run::check(a),
     };

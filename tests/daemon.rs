@@ -54,7 +54,7 @@ impl Setup {
         (0..n)
             .map(|i| {
                 let p = d.join(format!("f{i:03}.jpg"));
-                scene::generate(w, h, 100 + i as u64, 2).image.save(&p).unwrap();
+                scene::generate(w, h, 100 + i as u64).image.save(&p).unwrap();
                 p
             })
             .collect()

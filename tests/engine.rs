@@ -153,7 +153,7 @@ fn finds_a_dark_spot_and_looks_where_it_is() {
 #[test]
 fn same_seed_and_patch_count_replays_exactly() {
     let (_d, mut e) = engine(&DesignedParams::default());
-    let frame = Frame::new(0, "scene", scene::generate(800, 600, 3, 3).image);
+    let frame = Frame::new(0, "scene", scene::generate(800, 600, 3).image);
     let s = Settings { budget_ms: 10_000.0, min_patches: 24, max_patches: 24, ..Settings::default() };
     let a = e.analyze(&frame, &s, 42).unwrap();
     let b = e.analyze(&frame, &s, 42).unwrap();
@@ -167,7 +167,7 @@ fn same_seed_and_patch_count_replays_exactly() {
 #[test]
 fn budget_loop_honours_min_and_max_and_all_cells() {
     let (_d, mut e) = engine(&DesignedParams::default());
-    let frame = Frame::new(0, "scene", scene::generate(1024, 768, 5, 2).image);
+    let frame = Frame::new(0, "scene", scene::generate(1024, 768, 5).image);
     // A budget far too small: min_patches is still done, the overrun reported.
     let tight = Settings { budget_ms: 0.001, min_patches: 8, max_patches: 100, ..Settings::default() };
     let r = e.analyze(&frame, &tight, 1).unwrap();
@@ -196,7 +196,7 @@ fn budget_loop_honours_min_and_max_and_all_cells() {
 #[test]
 fn a_realistic_budget_stops_on_time() {
     let (_d, mut e) = engine(&DesignedParams::default());
-    let frame = Frame::new(0, "scene", scene::generate(2448, 2048, 11, 3).image);
+    let frame = Frame::new(0, "scene", scene::generate(2448, 2048, 11).image);
     let s = Settings { budget_ms: 30.0, min_patches: 1, max_patches: 100_000, ..Settings::default() };
     e.analyze(&frame, &s, 1).unwrap(); // warm the cost estimates
     let r = e.analyze(&frame, &s, 2).unwrap();

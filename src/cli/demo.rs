@@ -1,4 +1,4 @@
-//! `saccade demo`: generate demo frames and the designed bundle, then analyse the frames.
+//! `saccade demo`: write the shipped demo bundle and generated frames, then analyse them.
 
 use std::io::Write;
 use std::path::PathBuf;
@@ -7,7 +7,7 @@ use std::sync::Arc;
 
 use anyhow::Context;
 use clap::Args;
-use saccade::demo::{designed, scene};
+use saccade::demo::{designed, scene, shipped};
 use saccade::engine::{Bundle, Engine, Outcome, Settings};
 use saccade::source::{decode_file, DEFAULT_MAX_PIXELS};
 
@@ -26,6 +26,9 @@ pub struct DemoArgs {
     pub size: (u32, u32),
     #[arg(long, default_value_t = Settings::default().budget_ms)]
     pub budget_ms: f64,
+    /// Use the designed (untrained) bundle instead of the shipped trained one.
+    #[arg(long)]
+    pub designed: bool,
 }
 
 pub fn parse_size(s: &str) -> Result<(u32, u32), String> {
@@ -36,7 +39,12 @@ pub fn parse_size(s: &str) -> Result<(u32, u32), String> {
 
 pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
     let bundle_dir = args.out.join("bundle");
-    designed::write_bundle(&bundle_dir, &designed::DesignedParams::default()).with_context(|| format!("writing {}", bundle_dir.display()))?;
+    if args.designed {
+        designed::write_bundle(&bundle_dir, &designed::DesignedParams::default())
+    } else {
+        shipped::write_bundle(&bundle_dir)
+    }
+    .with_context(|| format!("writing {}", bundle_dir.display()))?;
     let frames_dir = args.out.join("frames");
     std::fs::create_dir_all(&frames_dir).with_context(|| format!("creating {}", frames_dir.display()))?;
     let settings = Settings { budget_ms: args.budget_ms, ..Settings::default() };
@@ -45,7 +53,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
     let mut out = std::io::stdout().lock();
     for n in 0..args.frames {
         let seed = args.seed.wrapping_mul(1_000_003).wrapping_add(n as u64);
-        let generated = scene::generate(args.size.0, args.size.1, seed, 3);
+        let generated = scene::generate(args.size.0, args.size.1, seed);
         let path = frames_dir.join(format!("sheet-{n:03}.jpg"));
         generated.image.save(&path).with_context(|| format!("writing {}", path.display()))?;
         let t = std::time::Instant::now();
@@ -54,7 +62,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
         let mut report = engine.analyze(&frame, &settings, seed)?;
         report.times_ms.decode = Some(decode_ms);
         writeln!(out, "{}", serde_json::to_string(&report)?)?;
-        let placed: Vec<&str> = generated.flaws.iter().map(|f| f.kind.class_name()).collect();
+        let placed = generated.classes();
         let said: Vec<String> = report.classes.iter().filter(|c| c.outcome != Outcome::Clear).map(|c| format!("{}:{:?}", c.name, c.outcome).to_lowercase()).collect();
         log::info!(
             "{}: placed [{}], engine says [{}] from {} patches ({:.0} % of attention) in {:.1} ms",

@@ -111,6 +111,7 @@ pub fn manifest(p: &DesignedParams) -> Manifest {
         attention: net("attention.onnx", "thumbnail", "scores"),
         features: net("features.onnx", "patches", "features"),
         head: net("head.onnx", "psi", "logits"),
+        baseline: None,
     }
 }
 

@@ -1,4 +1,6 @@
-//! The built-in demo: a synthetic sheet-inspection scene and a designed bundle.
+//! The built-in demo: a synthetic sheet-inspection scene, the trained bundle that ships
+//! with the program, and a designed (untrained) bundle with known behaviour for tests.
 
 pub mod designed;
 pub mod scene;
+pub mod shipped;

@@ -67,6 +67,10 @@ pub struct Manifest {
     pub attention: NetworkRef,
     pub features: NetworkRef,
     pub head: NetworkRef,
+    /// Optional thumbnail-only classifier (thumbnail in, one logit per class out), kept
+    /// for comparison: `saccade sweep` reports it beside the sampled estimate.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub baseline: Option<NetworkRef>,
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -234,6 +238,7 @@ pub struct Bundle {
     pub attention: Network,
     pub features: Network,
     pub head: Network,
+    pub baseline: Option<Network>,
     pub dry_run: DryRunCosts,
 }
 
@@ -248,7 +253,11 @@ impl Bundle {
         let attention = Network::load(dir.join(&manifest.attention.file), &manifest.attention, 4, Some(3))?;
         let features = Network::load(dir.join(&manifest.features.file), &manifest.features, 4, Some(3))?;
         let head = Network::load(dir.join(&manifest.head.file), &manifest.head, 2, None)?;
-        let mut bundle = Self { dir: dir.to_path_buf(), manifest, attention, features, head, dry_run: DryRunCosts::default() };
+        let baseline = match &manifest.baseline {
+            Some(net) => Some(Network::load(dir.join(&net.file), net, 4, Some(3))?),
+            None => None,
+        };
+        let mut bundle = Self { dir: dir.to_path_buf(), manifest, attention, features, head, baseline, dry_run: DryRunCosts::default() };
         bundle.dry_run = bundle.check_by_running(batch_sizes)?;
         Ok(bundle)
     }
@@ -258,9 +267,16 @@ impl Bundle {
         let m = &self.manifest;
         let stride = m.cell_stride as usize;
         // Two thumbnail sizes, one not a multiple of the stride, prove the symbolic H and W.
+        let c = m.classes.len();
         for (h, w) in [(8 * stride, 12 * stride), (10 * stride + stride / 2 + 1, 7 * stride + 1)] {
             let out = self.attention.run(Tensor::zero::<f32>(&[1, 3, h, w]).expect("small tensor"))?;
             cell_grid(out.shape(), h, w, stride).map_err(|msg| net_err(&self.attention.path, msg))?;
+            if let Some(b) = &self.baseline {
+                let out = b.run(Tensor::zero::<f32>(&[1, 3, h, w]).expect("small tensor"))?;
+                if out.shape() != [1, c] {
+                    return Err(net_err(&b.path, format!("for a thumbnail of {h}×{w} the baseline output has shape {:?}, expected [1, {c}] (one logit per class)", out.shape())));
+                }
+            }
         }
         let p = m.patch_size as usize;
         let mut sizes: Vec<usize> = batch_sizes.iter().copied().chain([1, 2]).collect();
@@ -280,7 +296,6 @@ impl Bundle {
             self.features.run(input)?;
             per_patch.push((b, t0.elapsed() / b as u32));
         }
-        let c = m.classes.len();
         let input = Tensor::zero::<f32>(&[2, m.feature_dim]).expect("small tensor");
         let out = self.head.run(input.clone())?;
         if out.shape() != [2, c] {
@@ -292,6 +307,20 @@ impl Bundle {
         let t0 = Instant::now();
         self.head.run(input)?;
         Ok(DryRunCosts { per_patch, head: t0.elapsed() })
+    }
+
+    /// Class probabilities of the thumbnail-only baseline for a whole frame, when the
+    /// bundle has one. The thumbnail is made exactly as for the attention network.
+    pub fn baseline_probabilities(&self, frame: &image::RgbImage) -> Result<Option<Vec<f64>>, BundleError> {
+        let Some(net) = &self.baseline else { return Ok(None) };
+        let m = &self.manifest;
+        let thumb = super::thumbnail::area_reduce(frame, m.thumbnail_factor);
+        let (w, h) = (thumb.width() as usize, thumb.height() as usize);
+        let mut input = Tensor::zero::<f32>(&[1, 3, h, w]).expect("thumbnail tensor");
+        super::patches::Normalizer::new(&m.normalization).write_planar(&thumb, super::analysis::f32_slice(&mut input));
+        let logits = net.run(input)?;
+        let logits = logits.as_slice().ok_or_else(|| net_err(&net.path, "output is not contiguous"))?;
+        Ok(Some(super::uncertainty::probabilities(logits, m.classes.len(), m.activation)))
     }
 }
 

@@ -142,6 +142,13 @@ impl GraphWriter {
         self.node(op, &[x], &[("kernel_shape", Attr::Ints(vec![k as i64, k as i64])), ("strides", Attr::Ints(vec![stride as i64, stride as i64]))])
     }
 
+    /// Max pool whose last window may hang over the edge (ONNX `ceil_mode`): every input
+    /// pixel lands in some window, so a thumbnail of any size maps to `ceil(len / k)` cells.
+    pub fn max_pool_ceil(&mut self, x: &str, k: usize) -> String {
+        let k = k as i64;
+        self.node("MaxPool", &[x], &[("kernel_shape", Attr::Ints(vec![k, k])), ("strides", Attr::Ints(vec![k, k])), ("ceil_mode", Attr::Int(1))])
+    }
+
     /// `[N, C, H, W]` → `[N, C]` by a global pool (`GlobalAveragePool` or `GlobalMaxPool`).
     pub fn global_pool(&mut self, op: &str, x: &str) -> String {
         let pooled = self.node(op, &[x], &[]);

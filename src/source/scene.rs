@@ -27,7 +27,7 @@ impl SceneSource {
                 return;
             }
             next += period;
-            let generated = scene::generate(self.width, self.height, self.seed.wrapping_add(seq), 3);
+            let generated = scene::generate(self.width, self.height, self.seed.wrapping_add(seq));
             if !feed.send(Ok(Frame::new(seq, format!("scene:{}", self.seed.wrapping_add(seq)), generated.image))) {
                 return;
             }

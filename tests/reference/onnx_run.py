@@ -1,4 +1,6 @@
-"""Runs ONNX files in onnxruntime (CPU, one thread) for comparison with tract.
+"""Runs ONNX files in onnxruntime (CPU, one thread) for comparison with tract, after
+checking each file with the ONNX standard's reference checker (onnx.checker, full check
+with shape inference), which raises on any violation.
 
 Reads JSON [{"model": path, "input": name, "shape": [...], "data": [...]}, ...] on stdin
 and writes [{"shape": [...], "data": [...]}, ...] with each model's first output.
@@ -7,6 +9,7 @@ import json
 import sys
 
 import numpy as np
+import onnx
 import onnxruntime as ort
 
 
@@ -16,6 +19,7 @@ def main():
     opts.inter_op_num_threads = 1
     results = []
     for job in json.load(sys.stdin):
+        onnx.checker.check_model(onnx.load(job["model"]), full_check=True)
         sess = ort.InferenceSession(job["model"], opts, providers=["CPUExecutionProvider"])
         x = np.asarray(job["data"], dtype=np.float32).reshape(job["shape"])
         (y,) = sess.run(None, {job["input"]: x})[:1]
