@@ -14,7 +14,7 @@ use std::time::Instant;
 
 use candle_core::{Device, Result, Tensor, Var};
 use candle_nn::{AdamW, Optimizer, ParamsAdamW};
-use indicatif::{ProgressBar, ProgressStyle};
+use indicatif::{MultiProgress, ProgressBar, ProgressStyle};
 use rand::seq::SliceRandom;
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
@@ -155,27 +155,6 @@ impl Model for Baseline {
     }
 }
 
-/// Macro F1 at probability 0.5 (logit 0); a class with no positive and no prediction
-/// counts 0, as scikit-learn's `f1_score` does by default.
-fn macro_f1(logits: &[Vec<f32>], targets: &[&[f32]]) -> f64 {
-    let c = targets.first().map_or(0, |t| t.len());
-    let per: Vec<f64> = (0..c)
-        .map(|j| {
-            let (mut tp, mut fp, mut fneg) = (0.0, 0.0, 0.0);
-            for (z, t) in logits.iter().zip(targets) {
-                match (z[j] > 0.0, t[j] > 0.5) {
-                    (true, true) => tp += 1.0,
-                    (true, false) => fp += 1.0,
-                    (false, true) => fneg += 1.0,
-                    _ => {}
-                }
-            }
-            if tp + fp + fneg == 0.0 { 0.0 } else { 2.0 * tp / (2.0 * tp + fp + fneg) }
-        })
-        .collect();
-    per.iter().sum::<f64>() / c.max(1) as f64
-}
-
 /// Mean loss and macro F1 of `m` on the frames `val`.
 pub fn evaluate<M: Model>(m: &M, data: &Dataset, val: &[usize], rng: &mut ChaCha8Rng, o: &FitOptions) -> Result<(f64, f64)> {
     let (mut loss, mut all) = (0.0, Vec::new());
@@ -184,13 +163,16 @@ pub fn evaluate<M: Model>(m: &M, data: &Dataset, val: &[usize], rng: &mut ChaCha
         loss += bce_with_logits(&z, &targets(data, chunk)?)?.to_scalar::<f32>()? as f64 * chunk.len() as f64;
         all.extend(z.to_vec2::<f32>()?);
     }
-    let t: Vec<&[f32]> = val.iter().map(|&i| data.samples[i].target.as_slice()).collect();
-    Ok((loss / val.len() as f64, macro_f1(&all, &t)))
+    // Predicted at probability 0.5, i.e. logit 0.
+    let pred: Vec<Vec<bool>> = all.iter().map(|z| z.iter().map(|&v| v > 0.0).collect()).collect();
+    let truth: Vec<Vec<bool>> = val.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
+    Ok((loss / val.len() as f64, crate::eval::metrics::f1(&truth, &pred).macro_f1))
 }
 
 /// Trains `m` with AdamW, keeps the weights of the epoch with the lowest validation
 /// loss and stops after `patience` epochs without improvement.
-pub fn fit<M: Model>(m: &M, vars: &[Var], data: &Dataset, train: &[usize], val: &[usize], o: &FitOptions, rng: &mut ChaCha8Rng, log: &mut Vec<EpochLog>) -> anyhow::Result<()> {
+#[allow(clippy::too_many_arguments)]
+pub fn fit<M: Model>(m: &M, vars: &[Var], data: &Dataset, train: &[usize], val: &[usize], o: &FitOptions, rng: &mut ChaCha8Rng, log: &mut Vec<EpochLog>, bars: &MultiProgress) -> anyhow::Result<()> {
     let mut opt = AdamW::new(vars.to_vec(), ParamsAdamW { lr: o.learning_rate, weight_decay: 1e-4, ..Default::default() })?;
     let mut best: Option<(f64, Vec<Tensor>)> = None;
     let mut since_best = 0;
@@ -199,7 +181,7 @@ pub fn fit<M: Model>(m: &M, vars: &[Var], data: &Dataset, train: &[usize], val: 
     for epoch in 1..=o.epochs {
         let t0 = Instant::now();
         order.shuffle(rng);
-        let bar = ProgressBar::new(steps as u64).with_style(
+        let bar = bars.add(ProgressBar::new(steps as u64)).with_style(
             ProgressStyle::with_template("{prefix} [{bar:30}] {pos}/{len} {msg} ({eta})").expect("valid template").progress_chars("=> "),
         );
         bar.set_prefix(format!("{} epoch {epoch}/{}", M::NAME, o.epochs));

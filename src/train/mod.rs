@@ -89,16 +89,18 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     // The thumbnail-only comparison trains on the other core meanwhile; candle runs each
     // model on its own thread (RAYON_NUM_THREADS = 1, set by the command) so the two do
     // not contend for one pool.
+    // One bar per model on the terminal, each on its own line.
+    let bars = indicatif::MultiProgress::new();
     let (sampled, loss_before, loss_after, baseline, log) = std::thread::scope(|scope| -> anyhow::Result<_> {
         let comparison = o.baseline.then(|| {
-            let (data, train, val) = (&data, train, val);
+            let (data, train, val, bars) = (&data, train, val, &bars);
             let classes = classes.len();
             scope.spawn(move || -> anyhow::Result<(Baseline, Vec<EpochLog>)> {
                 let mut bp = Params::new(ChaCha8Rng::seed_from_u64(o.seed ^ 0xba5e));
                 let b = Baseline::new(&mut bp, &o.arch, classes)?;
                 let mut log = Vec::new();
                 let opts = FitOptions { epochs: o.baseline_epochs, ..o.fit.clone() };
-                fit(&b, &bp.vars, data, train, val, &opts, &mut ChaCha8Rng::seed_from_u64(o.seed ^ 0xba5e), &mut log)?;
+                fit(&b, &bp.vars, data, train, val, &opts, &mut ChaCha8Rng::seed_from_u64(o.seed ^ 0xba5e), &mut log, bars)?;
                 Ok((b, log))
             })
         });
@@ -113,9 +115,9 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
         if o.fit.warmup > 0 {
             let frozen = Frozen::new(&sampled, &data, o.fit.batch)?;
             let warm = FitOptions { epochs: o.fit.warmup, ..o.fit.clone() };
-            fit(&frozen, &params.vars[attention_vars..], &data, train, val, &warm, &mut rng, &mut log)?;
+            fit(&frozen, &params.vars[attention_vars..], &data, train, val, &warm, &mut rng, &mut log, &bars)?;
         }
-        fit(&sampled, &params.vars, &data, train, val, &o.fit, &mut rng, &mut log)?;
+        fit(&sampled, &params.vars, &data, train, val, &o.fit, &mut rng, &mut log, &bars)?;
         let loss_after = loss_on_train(&sampled)?;
         log::info!("sampled model: training loss {loss_before:.4} before, {loss_after:.4} after");
         let baseline = match comparison {
