@@ -1,9 +1,8 @@
 //! The networks a bundle holds, as trained here, and their export to ONNX.
 //!
-//! Shapes were chosen by timing candidates in tract and onnxruntime on this project's
-//! reference machine (see DEVELOPERS.md, "Trainer architectures"): plain 3×3 and
-//! patch-embedding convolutions, ReLU and max pooling, which tract runs close to
-//! onnxruntime's speed.
+//! Only plain operators: patch-embedding and 3×3 convolutions, ReLU, max pooling and
+//! dense layers. DEVELOPERS.md ("Trainer architectures") has the per-patch times of the
+//! feature-network presets in tract and onnxruntime.
 
 use candle_core::{Result, Tensor, D};
 
