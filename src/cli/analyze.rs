@@ -38,6 +38,16 @@ pub struct EngineArgs {
     /// Examine exactly this many patches (sets both --min-patches and --max-patches).
     #[arg(long)]
     pub patches: Option<usize>,
+    #[command(flatten)]
+    pub limits: EngineLimits,
+    /// Greyscale mask image of the frame size (black = ignore).
+    #[arg(long)]
+    pub mask: Option<PathBuf>,
+}
+
+/// Engine options shared by `analyze` and `sweep`.
+#[derive(Args, Clone)]
+pub struct EngineLimits {
     #[arg(long, default_value_t = Settings::default().min_patches)]
     pub min_patches: usize,
     #[arg(long, default_value_t = Settings::default().max_patches)]
@@ -48,21 +58,25 @@ pub struct EngineArgs {
     /// Gaussian samples of the estimate for the uncertainty.
     #[arg(long, default_value_t = Settings::default().samples)]
     pub samples: usize,
-    /// Greyscale mask image of the frame size (black = ignore).
-    #[arg(long)]
-    pub mask: Option<PathBuf>,
     /// Refuse images with more pixels than this (checked from the header).
     #[arg(long, default_value_t = DEFAULT_MAX_PIXELS)]
     pub max_pixels: u64,
 }
 
+impl EngineLimits {
+    /// `base` with these patch bounds, batch and sample count.
+    pub fn apply(&self, base: Settings) -> Settings {
+        Settings { min_patches: self.min_patches, max_patches: self.max_patches, batch: self.batch, samples: self.samples, ..base }
+    }
+}
+
 impl EngineArgs {
     pub fn settings(&self) -> Settings {
-        let (min_patches, max_patches) = match self.patches {
-            Some(k) => (k, k),
-            None => (self.min_patches, self.max_patches),
-        };
-        Settings { budget_ms: self.budget_ms, estimator: self.estimator, min_patches, max_patches, batch: self.batch, samples: self.samples, ..Settings::default() }
+        let s = self.limits.apply(Settings { budget_ms: self.budget_ms, estimator: self.estimator, ..Settings::default() });
+        match self.patches {
+            Some(k) => Settings { min_patches: k, max_patches: k, ..s },
+            None => s,
+        }
     }
 
     /// Loads the bundle and builds an engine with the mask, after checking the settings.
@@ -84,7 +98,7 @@ pub fn run(args: AnalyzeArgs) -> anyhow::Result<ExitCode> {
     let mut failed = 0;
     for (seq, path) in args.images.iter().enumerate() {
         let t = std::time::Instant::now();
-        let line = match decode_file(path, seq as u64, args.engine.max_pixels) {
+        let line = match decode_file(path, seq as u64, args.engine.limits.max_pixels) {
             Err(e) => Err(e.to_string()),
             Ok(frame) => {
                 let decode_ms = t.elapsed().as_secs_f64() * 1000.0;

@@ -22,7 +22,9 @@ use saccade::eval::plot::{self, SweepPlot};
 use saccade::eval::rows::{recommend, within_tolerance, Row, RowKind, Tally};
 use saccade::eval::csv;
 use saccade::labels::{class_matrix, read_labels};
-use saccade::source::{decode_file, DEFAULT_MAX_PIXELS};
+use saccade::source::decode_file;
+
+use super::analyze::EngineLimits;
 
 /// Analyse labelled frames at several budgets and recommend the smallest good one.
 #[derive(Args)]
@@ -61,24 +63,13 @@ pub struct SweepArgs {
     /// Equal-width bins of the expected calibration error.
     #[arg(long, default_value_t = 10)]
     pub ece_bins: usize,
-    #[arg(long, default_value_t = Settings::default().min_patches)]
-    pub min_patches: usize,
-    #[arg(long, default_value_t = Settings::default().max_patches)]
-    pub max_patches: usize,
-    /// Patches per feature-network run.
-    #[arg(long, default_value_t = Settings::default().batch)]
-    pub batch: usize,
-    /// Gaussian samples of the estimate for the uncertainty.
-    #[arg(long, default_value_t = Settings::default().samples)]
-    pub samples: usize,
-    /// Refuse frames with more pixels than this (checked from the header).
-    #[arg(long, default_value_t = DEFAULT_MAX_PIXELS)]
-    pub max_pixels: u64,
+    #[command(flatten)]
+    pub limits: EngineLimits,
 }
 
 impl SweepArgs {
     fn settings(&self) -> Settings {
-        Settings { estimator: self.estimator, min_patches: self.min_patches, max_patches: self.max_patches, batch: self.batch, samples: self.samples, ..Settings::default() }
+        self.limits.apply(Settings { estimator: self.estimator, ..Settings::default() })
     }
 
     /// Budgets ascending without repeats, after checking every value.
@@ -173,7 +164,7 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
     let n = items.len() as u64;
     for (i, it) in items.iter().enumerate() {
         bar.set_message(it.name.clone());
-        let frame = decode_file(&it.path, i as u64, args.max_pixels).with_context(|| format!("{}:{}", args.labels.display(), it.line))?;
+        let frame = decode_file(&it.path, i as u64, args.limits.max_pixels).with_context(|| format!("{}:{}", args.labels.display(), it.line))?;
         let at = || format!("{}:{}: frame {}", args.labels.display(), it.line, it.path.display());
         if sizes.insert((frame.width(), frame.height())) {
             // The first analysis of a new frame size builds its plans and warms caches; it
@@ -287,7 +278,7 @@ fn print_recommendation(args: &SweepArgs, base: &Settings, rows: &[Row]) {
         let best = rows.iter().filter(|r| r.row == RowKind::Budget).max_by(|a, b| a.macro_f1.total_cmp(&b.macro_f1));
         println!("no budget swept reaches macro F1 within {} points of exhaustive ({:.3}) and holds its deadline.", args.tolerance, ex.macro_f1);
         if let Some(b) = best {
-            let capped = b.mean_patches.unwrap_or(0.0) >= args.max_patches as f64 - 0.5;
+            let capped = b.mean_patches.unwrap_or(0.0) >= args.limits.max_patches as f64 - 0.5;
             println!("best: {} ms at {:.3}, {:.0} patches on average; try larger budgets{}.", b.budget_ms.unwrap_or(0.0), b.macro_f1, b.mean_patches.unwrap_or(0.0), if capped { " and a larger --max-patches (the rows stop at it)" } else { "" });
         }
         return;
