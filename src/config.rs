@@ -251,7 +251,11 @@ pub struct ConfigError {
 impl Config {
     /// Reads, parses and checks a config file; relative paths become relative to its folder.
     pub fn load(path: &Path) -> Result<Self, ConfigError> {
-        let text = std::fs::read_to_string(path).map_err(|e| ConfigError { path: path.into(), at: None, message: format!("cannot read the config file: {e}") })?;
+        let text = std::fs::read_to_string(path).map_err(|e| ConfigError {
+            path: path.into(),
+            at: None,
+            message: format!("cannot read the config file: {e}"),
+        })?;
         Self::parse(&text, path)
     }
 
@@ -311,7 +315,10 @@ impl Config {
                     return Err(("width", "[source] camera width, height and fps must be positive".into()));
                 }
                 if let Some(f) = formats.iter().find(|f| !["mjpeg", "yuyv", "nv12"].contains(&f.as_str())) {
-                    return Err(("formats", format!("[source] formats: {f:?} is not one of \"mjpeg\", \"yuyv\", \"nv12\"")));
+                    return Err((
+                        "formats",
+                        format!("[source] formats: {f:?} is not one of \"mjpeg\", \"yuyv\", \"nv12\""),
+                    ));
                 }
             }
             SourceConfig::Folder { path, after, move_to, stable_ms, poll_ms, .. } => {
@@ -319,8 +326,12 @@ impl Config {
                     return Err(("path", format!("[source] path = {path:?}: not a folder")));
                 }
                 match (after, move_to) {
-                    (AfterUse::Move, None) => return Err(("after", "[source] after = \"move\" needs move_to = \"FOLDER\"".into())),
-                    (AfterUse::Move, Some(m)) => creatable(m).map_err(|e| ("move_to", format!("[source] move_to: {e}")))?,
+                    (AfterUse::Move, None) => {
+                        return Err(("after", "[source] after = \"move\" needs move_to = \"FOLDER\"".into()))
+                    }
+                    (AfterUse::Move, Some(m)) => {
+                        creatable(m).map_err(|e| ("move_to", format!("[source] move_to: {e}")))?
+                    }
                     _ => {}
                 }
                 if *poll_ms == 0 || *stable_ms == 0 {
@@ -332,7 +343,10 @@ impl Config {
                     return Err(("paths", "[source] paths: expected at least one file or glob pattern".into()));
                 }
                 if !(*rate_fps >= 0.0 && rate_fps.is_finite()) {
-                    return Err(("rate_fps", format!("[source] rate_fps = {rate_fps}: expected 0 (as fast as possible) or a positive rate")));
+                    return Err((
+                        "rate_fps",
+                        format!("[source] rate_fps = {rate_fps}: expected 0 (as fast as possible) or a positive rate"),
+                    ));
                 }
             }
             SourceConfig::Scene { width, height, fps, .. } => {
@@ -377,13 +391,17 @@ impl Config {
 
     /// Checks what depends on the loaded bundle: one threshold per class.
     pub fn check_bundle(&self, path: &Path, bundle: &crate::engine::Bundle) -> Result<(), String> {
-        self.engine.validate(Some(bundle.manifest.classes.len())).map_err(|e| format!("{}: [engine] {e}", path.display()))
+        self.engine
+            .validate(Some(bundle.manifest.classes.len()))
+            .map_err(|e| format!("{}: [engine] {e}", path.display()))
     }
 
     /// The frame size when the source fixes it in the config.
     pub fn frame_size(&self) -> Option<(u32, u32)> {
         match self.source {
-            SourceConfig::Camera { width, height, .. } | SourceConfig::Scene { width, height, .. } => Some((width, height)),
+            SourceConfig::Camera { width, height, .. } | SourceConfig::Scene { width, height, .. } => {
+                Some((width, height))
+            }
             _ => None,
         }
     }
@@ -399,7 +417,10 @@ impl Config {
 }
 
 fn first_word(e: &str) -> &'static str {
-    ["budget_ms", "min_patches", "max_patches", "batch", "samples", "interval", "thresholds"].into_iter().find(|k| e.starts_with(k)).unwrap_or("engine")
+    ["budget_ms", "min_patches", "max_patches", "batch", "samples", "interval", "thresholds"]
+        .into_iter()
+        .find(|k| e.starts_with(k))
+        .unwrap_or("engine")
 }
 
 /// The folder exists or can be created, and is writable.

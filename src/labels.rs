@@ -46,7 +46,9 @@ pub fn read_labels(path: &Path) -> Result<Vec<Labelled>, LabelError> {
         if raw.trim().is_empty() {
             continue;
         }
-        let l: Line = serde_json::from_str(raw).map_err(|e| err(Some(line), format!("expected {{\"frame\": \"FILE\", \"classes\": [\"NAME\", ...]}}: {e}")))?;
+        let l: Line = serde_json::from_str(raw).map_err(|e| {
+            err(Some(line), format!("expected {{\"frame\": \"FILE\", \"classes\": [\"NAME\", ...]}}: {e}"))
+        })?;
         if l.frame.is_empty() {
             return Err(err(Some(line), "frame: expected a file name, found an empty string".into()));
         }

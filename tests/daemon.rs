@@ -62,7 +62,9 @@ impl Setup {
 
     fn spawn(&self, config: &Path, envs: &[(&str, &str)]) -> Child {
         let mut c = Command::new(BIN);
-        c.args(["run", "--config", config.to_str().unwrap()]).stdout(Stdio::null()).stderr(std::fs::File::create(self.path("stderr.txt")).unwrap());
+        c.args(["run", "--config", config.to_str().unwrap()])
+            .stdout(Stdio::null())
+            .stderr(std::fs::File::create(self.path("stderr.txt")).unwrap());
         c.env_remove("NOTIFY_SOCKET").env_remove("WATCHDOG_USEC");
         for (k, v) in envs {
             c.env(k, v);
@@ -111,7 +113,12 @@ fn kind(records: &[Value], k: &str) -> Vec<Value> {
 /// Validates the log with Python's `jsonschema` against the repository's schema.
 fn validate(log: &Path) -> Value {
     let schema = Path::new(env!("CARGO_MANIFEST_DIR")).join("config/record.schema.json");
-    serde_json::from_str(&common::run_reference("validate_records.py", &[schema.to_str().unwrap(), log.to_str().unwrap()], "")).unwrap()
+    serde_json::from_str(&common::run_reference(
+        "validate_records.py",
+        &[schema.to_str().unwrap(), log.to_str().unwrap()],
+        "",
+    ))
+    .unwrap()
 }
 
 #[test]
@@ -151,11 +158,19 @@ fn folder_source_end_to_end_with_bad_frames() {
 
     let recs = s.records();
     let frames = kind(&recs, "frame");
-    let mut origins: Vec<String> = frames.iter().map(|r| Path::new(r["origin"].as_str().unwrap()).file_name().unwrap().to_string_lossy().into_owned()).collect();
+    let mut origins: Vec<String> = frames
+        .iter()
+        .map(|r| Path::new(r["origin"].as_str().unwrap()).file_name().unwrap().to_string_lossy().into_owned())
+        .collect();
     origins.sort();
     assert_eq!(origins, (0..6).map(|i| format!("f{i:03}.jpg")).collect::<Vec<_>>(), "one record per frame");
     let errors: Vec<String> = kind(&recs, "error").iter().map(|r| format!("{} {}", r["origin"], r["error"])).collect();
-    for (name, why) in [("corrupt.jpg", "corrupt"), ("truncated.jpg", "truncated"), ("empty.jpg", "empty file"), ("huge.pnm", "over the limit")] {
+    for (name, why) in [
+        ("corrupt.jpg", "corrupt"),
+        ("truncated.jpg", "truncated"),
+        ("empty.jpg", "empty file"),
+        ("huge.pnm", "over the limit"),
+    ] {
         assert!(errors.iter().any(|e| e.contains(name) && e.contains(why)), "{name}: {errors:?}");
     }
     assert_eq!(kind(&recs, "health").len(), 1, "a final health record at exit");
@@ -171,7 +186,11 @@ fn folder_source_end_to_end_with_bad_frames() {
     assert_eq!(v["partial_last_line"], false);
     // The validator does check RFC 3339 times: a negative control.
     let bad = s.path("bad.jsonl");
-    std::fs::write(&bad, serde_json::to_string(&recs[0]).unwrap().replace(recs[0]["time"].as_str().unwrap(), "2026-12-02 10:00") + "\n").unwrap();
+    std::fs::write(
+        &bad,
+        serde_json::to_string(&recs[0]).unwrap().replace(recs[0]["time"].as_str().unwrap(), "2026-12-02 10:00") + "\n",
+    )
+    .unwrap();
     assert_ne!(validate(&bad)["problems"], Value::Array(vec![]));
 }
 
@@ -179,7 +198,10 @@ fn folder_source_end_to_end_with_bad_frames() {
 fn sighup_applies_a_good_config_and_keeps_the_old_one_on_a_bad_one() {
     let s = Setup::new();
     s.frames("frames", 2, 640, 480);
-    let source = format!("kind = \"files\"\npaths = [{:?}]\nrate_fps = 20\nrepeat = true", s.path("frames/*.jpg").display().to_string());
+    let source = format!(
+        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 20\nrepeat = true",
+        s.path("frames/*.jpg").display().to_string()
+    );
     let cfg = s.config(&source, "budget_ms = 40", "");
     let mut child = s.spawn(&cfg, &[]);
     wait_for(60, "records at 40 ms", || kind(&s.records(), "frame").len() >= 3);
@@ -204,7 +226,8 @@ fn sighup_applies_a_good_config_and_keeps_the_old_one_on_a_bad_one() {
 fn kill_9_leaves_only_complete_lines_and_a_restart_goes_on() {
     let s = Setup::new();
     s.frames("frames", 3, 640, 480);
-    let source = format!("kind = \"files\"\npaths = [{:?}]\nrepeat = true", s.path("frames/*.jpg").display().to_string());
+    let source =
+        format!("kind = \"files\"\npaths = [{:?}]\nrepeat = true", s.path("frames/*.jpg").display().to_string());
     let cfg = s.config(&source, "budget_ms = 10\nmax_patches = 8", "sync = \"never\"");
     for round in 0..3 {
         let mut child = s.spawn(&cfg, &[]);
@@ -238,8 +261,15 @@ fn overload_drops_frames_keeps_memory_flat_and_age_bounded() {
     let s = Setup::new();
     s.frames("frames", 4, 800, 600);
     // Frames offered at 100/s against about 20/s of analysis (50 ms budget, no patch cap).
-    let source = format!("kind = \"files\"\npaths = [{:?}]\nrate_fps = 100\nrepeat = true\noverload = \"drop_oldest\"", s.path("frames/*.jpg").display().to_string());
-    let cfg = s.config(&source, "budget_ms = 50\nmin_patches = 1\nmax_patches = 100000", "health_interval_s = 1\nrecords = \"not_clear\"");
+    let source = format!(
+        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 100\nrepeat = true\noverload = \"drop_oldest\"",
+        s.path("frames/*.jpg").display().to_string()
+    );
+    let cfg = s.config(
+        &source,
+        "budget_ms = 50\nmin_patches = 1\nmax_patches = 100000",
+        "health_interval_s = 1\nrecords = \"not_clear\"",
+    );
     let mut child = s.spawn(&cfg, &[]);
     wait_for(60, "the first health record", || !kind(&s.records(), "health").is_empty());
     std::thread::sleep(Duration::from_secs(2));
@@ -267,7 +297,10 @@ fn notifies_ready_watchdog_status_and_stopping() {
     let sock_path = s.path("notify.sock");
     let sock = UnixDatagram::bind(&sock_path).unwrap();
     sock.set_read_timeout(Some(Duration::from_millis(200))).unwrap();
-    let source = format!("kind = \"files\"\npaths = [{:?}]\nrate_fps = 5\nrepeat = true", s.path("frames/*.jpg").display().to_string());
+    let source = format!(
+        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 5\nrepeat = true",
+        s.path("frames/*.jpg").display().to_string()
+    );
     let cfg = s.config(&source, "budget_ms = 20", "");
     let mut child = s.spawn(&cfg, &[("NOTIFY_SOCKET", sock_path.to_str().unwrap()), ("WATCHDOG_USEC", "500000")]);
     let mut msgs = Vec::new();
@@ -287,7 +320,10 @@ fn notifies_ready_watchdog_status_and_stopping() {
     assert!(msgs[0].lines().any(|l| l == "READY=1"), "{msgs:?}");
     let pings = msgs.iter().filter(|m| m.lines().any(|l| l == "WATCHDOG=1")).count();
     assert!(pings >= 5, "{pings} watchdog pings in 7 s at a 0.5 s watchdog: {msgs:?}");
-    assert!(msgs.iter().any(|m| m.starts_with("STATUS=") && m.contains("frames/s") && m.contains("dropped")), "{msgs:?}");
+    assert!(
+        msgs.iter().any(|m| m.starts_with("STATUS=") && m.contains("frames/s") && m.contains("dropped")),
+        "{msgs:?}"
+    );
     assert!(msgs.last().unwrap().lines().any(|l| l == "STOPPING=1"), "{msgs:?}");
 }
 
@@ -319,7 +355,10 @@ fn config_errors_name_file_line_and_field() {
 
     let t = text.replace("budget_ms = 100", "budget_ms = 100\nbudget = 3");
     let e = err(&t);
-    assert!(e.contains(&format!("saccade.toml:{}:1:", line_of(&t, "budget ="))) && e.contains("unknown field `budget`"), "{e}");
+    assert!(
+        e.contains(&format!("saccade.toml:{}:1:", line_of(&t, "budget ="))) && e.contains("unknown field `budget`"),
+        "{e}"
+    );
     let t = text.replace("budget_ms = 100", "budget_ms = \"fast\"");
     let e = err(&t);
     assert!(e.contains(&format!(":{}:13:", line_of(&t, "budget_ms"))) && e.contains("invalid type"), "{e}");
@@ -342,7 +381,8 @@ fn shipped_configs_parse_and_check_prints_the_effective_config() {
     assert_eq!(c.log.keep, 5);
     let s = Setup::new();
     s.frames("frames", 1, 320, 240);
-    let cfg = s.config(&format!("kind = \"files\"\npaths = [{:?}]", s.path("frames/*.jpg").display().to_string()), "", "");
+    let cfg =
+        s.config(&format!("kind = \"files\"\npaths = [{:?}]", s.path("frames/*.jpg").display().to_string()), "", "");
     let out = Command::new(BIN).args(["check", "--config", cfg.to_str().unwrap()]).output().unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let effective: Config = toml::from_str(&String::from_utf8(out.stdout).unwrap()).unwrap();

@@ -78,7 +78,10 @@ fn wrong_feature_dimension_is_named() {
     let text = std::fs::read_to_string(&path).unwrap().replace("feature_dim = 4", "feature_dim = 6");
     std::fs::write(&path, text).unwrap();
     let e = error_text(dir.path());
-    assert!(e.contains("features.onnx") && e.contains("feature_dim") && e.contains("[1, 6]") && e.contains("[1, 4]"), "{e}");
+    assert!(
+        e.contains("features.onnx") && e.contains("feature_dim") && e.contains("[1, 6]") && e.contains("[1, 4]"),
+        "{e}"
+    );
 }
 
 #[test]
@@ -246,7 +249,8 @@ fn evidence_keeps_its_quota_and_switches_off_when_it_cannot_write() {
     let s = Settings { budget_ms: 10_000.0, min_patches: 16, max_patches: 16, ..Settings::default() };
     let report = e.analyze(&frame, &s, 1).unwrap();
     let dir = tempfile::tempdir().unwrap();
-    let cfg = EvidenceConfig { enabled: true, dir: dir.path().join("ev"), quota_mb: 0.05, max_age_hours: 1.0, crops: 3 };
+    let cfg =
+        EvidenceConfig { enabled: true, dir: dir.path().join("ev"), quota_mb: 0.05, max_age_hours: 1.0, crops: 3 };
     let mut ev = Evidence::open(&cfg);
     let first = ev.write(&report, &frame.image, "a");
     assert_eq!(first.len(), 4, "overview and three crops");

@@ -59,7 +59,12 @@ fn check_unbiased(p: &Problem, kind: EstimatorKind, k: usize, n_draws: usize, dr
     for c in 0..d {
         let var = est.iter().map(|e| (e[c] - mean[c]).powi(2)).sum::<f64>() / (r - 1.0);
         let se = (var / r).sqrt();
-        assert!((mean[c] - p.psi[c]).abs() <= 4.0 * se + 1e-12, "{kind} k={k} dim {c}: mean {} vs Psi {} (se {se})", mean[c], p.psi[c]);
+        assert!(
+            (mean[c] - p.psi[c]).abs() <= 4.0 * se + 1e-12,
+            "{kind} k={k} dim {c}: mean {} vs Psi {} (se {se})",
+            mean[c],
+            p.psi[c]
+        );
     }
     for x in 0..d {
         for y in 0..d {
@@ -70,7 +75,10 @@ fn check_unbiased(p: &Problem, kind: EstimatorKind, k: usize, n_draws: usize, dr
             let mc = entries.iter().sum::<f64>() / r;
             let mc_se = (entries.iter().map(|v| (v - mc).powi(2)).sum::<f64>() / (r - 1.0) / r).sqrt();
             let tol = 4.0 * (emp_se.powi(2) + mc_se.powi(2)).sqrt() + 1e-12;
-            assert!((mc - emp).abs() <= tol, "{kind} k={k} cov[{x},{y}]: mean estimate {mc} vs empirical {emp} (tol {tol})");
+            assert!(
+                (mc - emp).abs() <= tol,
+                "{kind} k={k} cov[{x},{y}]: mean estimate {mc} vs empirical {emp} (tol {tol})"
+            );
         }
     }
 }
@@ -105,7 +113,8 @@ fn priority_with_every_cell_equals_exhaustive() {
         assert_eq!(w.w[j], p.a[i]);
         assert_eq!(w.c[j], 0.0);
     }
-    let (psi, psi_e) = (w.estimate(&rows(&p, &plan, plan.len()), p.d), we.estimate(&rows(&p, &exact, exact.len()), p.d));
+    let (psi, psi_e) =
+        (w.estimate(&rows(&p, &plan, plan.len()), p.d), we.estimate(&rows(&p, &exact, exact.len()), p.d));
     for c in 0..p.d {
         // Same terms, summed in another order.
         assert!((psi[c] - psi_e[c]).abs() < 1e-12 && (psi_e[c] - p.psi[c]).abs() < 1e-12);
@@ -141,7 +150,9 @@ fn coverage(kind: EstimatorKind, k: usize, draws: usize) -> Vec<f64> {
     let w = [0.8f32, -0.5, 0.3, 0.2, -0.4, 0.6, 0.5, -0.3];
     let b = [-0.6f32, -0.4];
     let head = |rows: &[f32]| -> Vec<f32> {
-        rows.chunks_exact(d).flat_map(|r| (0..classes).map(move |c| (0..d).map(|j| w[c * d + j] * r[j]).sum::<f32>() + b[c])).collect()
+        rows.chunks_exact(d)
+            .flat_map(|r| (0..classes).map(move |c| (0..d).map(|j| w[c * d + j] * r[j]).sum::<f32>() + b[c]))
+            .collect()
     };
     let psi32: Vec<f32> = p.psi.iter().map(|&x| x as f32).collect();
     let exact = probabilities(&head(&psi32), classes, Activation::Sigmoid);

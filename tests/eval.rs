@@ -28,14 +28,23 @@ fn floats(v: &Value) -> Vec<f64> {
 /// A random case; `edges` puts probabilities on bin edges and 0/1, and fixes the columns
 /// scikit-learn treats specially (no positives and no predictions, no positives but
 /// predictions, positives but no predictions).
-fn case(rng: &mut ChaCha8Rng, frames: usize, classes: usize, edges: bool) -> (Vec<Vec<bool>>, Vec<Vec<bool>>, Vec<Vec<f64>>) {
+fn case(
+    rng: &mut ChaCha8Rng,
+    frames: usize,
+    classes: usize,
+    edges: bool,
+) -> (Vec<Vec<bool>>, Vec<Vec<bool>>, Vec<Vec<f64>>) {
     let mut truth = vec![vec![false; classes]; frames];
     let mut pred = vec![vec![false; classes]; frames];
     let mut probs = vec![vec![0.0; classes]; frames];
     let edge_values = [0.0, 0.1, 0.2, 0.3, 0.5, 0.7, 0.9, 1.0];
     for f in 0..frames {
         for c in 0..classes {
-            let p: f64 = if edges && rng.random_bool(0.5) { edge_values[rng.random_range(0..edge_values.len())] } else { rng.random() };
+            let p: f64 = if edges && rng.random_bool(0.5) {
+                edge_values[rng.random_range(0..edge_values.len())]
+            } else {
+                rng.random()
+            };
             probs[f][c] = p;
             truth[f][c] = rng.random_bool(p.clamp(0.05, 0.95));
             pred[f][c] = rng.random_bool(0.4);
@@ -63,8 +72,12 @@ fn f1_and_ece_agree_with_scikit_learn_and_numpy() {
     // (frames, classes, edge cases, ECE bins)
     let shapes = [(40, 4, true, 10), (200, 5, true, 15), (17, 2, false, 1), (300, 3, false, 7), (9, 6, true, 10)];
     let cases: Vec<_> = shapes.iter().map(|&(f, c, e, bins)| (case(&mut rng, f, c, e), bins)).collect();
-    let req: Vec<Value> = cases.iter().map(|((t, p, pr), bins)| json!({"truth": ints(t), "pred": ints(p), "probs": pr, "bins": bins})).collect();
-    let out: Value = serde_json::from_str(&common::run_reference("metrics_ref.py", &[], &Value::Array(req).to_string())).unwrap();
+    let req: Vec<Value> = cases
+        .iter()
+        .map(|((t, p, pr), bins)| json!({"truth": ints(t), "pred": ints(p), "probs": pr, "bins": bins}))
+        .collect();
+    let out: Value =
+        serde_json::from_str(&common::run_reference("metrics_ref.py", &[], &Value::Array(req).to_string())).unwrap();
     for (((truth, pred, probs), bins), theirs) in cases.iter().zip(out.as_array().unwrap()) {
         // Reference: scikit-learn f1_score(average=None / "macro", zero_division=0).
         let ours = metrics::f1(truth, pred);
@@ -145,7 +158,8 @@ impl Set {
         g.output(&logits, "logits", &[Dim::Fixed(1), Dim::Fixed(2)]);
         std::fs::write(self.bundle.join("baseline.onnx"), g.finish("test")).unwrap();
         let manifest = self.bundle.join("bundle.toml");
-        let text = std::fs::read_to_string(&manifest).unwrap() + "\n[baseline]\nfile = \"baseline.onnx\"\ninput = \"thumbnail\"\noutput = \"logits\"\n";
+        let text = std::fs::read_to_string(&manifest).unwrap()
+            + "\n[baseline]\nfile = \"baseline.onnx\"\ninput = \"thumbnail\"\noutput = \"logits\"\n";
         std::fs::write(manifest, text).unwrap();
     }
 
@@ -158,13 +172,24 @@ impl Set {
             .map(|l| {
                 let v: Value = serde_json::from_str(l).unwrap();
                 let named: Vec<&str> = v["classes"].as_array().unwrap().iter().map(|c| c.as_str().unwrap()).collect();
-                (classes.iter().map(|c| named.contains(c)).collect(), decode_file(&self.path(v["frame"].as_str().unwrap()), 0, u64::MAX).unwrap())
+                (
+                    classes.iter().map(|c| named.contains(c)).collect(),
+                    decode_file(&self.path(v["frame"].as_str().unwrap()), 0, u64::MAX).unwrap(),
+                )
             })
             .unzip()
     }
 
     fn sweep(&self, labels: &Path, extra: &[&str]) -> Output {
-        Command::new(BIN).arg("sweep").arg("--bundle").arg(&self.bundle).arg("--labels").arg(labels).args(extra).output().unwrap()
+        Command::new(BIN)
+            .arg("sweep")
+            .arg("--bundle")
+            .arg(&self.bundle)
+            .arg("--labels")
+            .arg(labels)
+            .args(extra)
+            .output()
+            .unwrap()
     }
 }
 
@@ -176,7 +201,23 @@ fn text(b: &[u8]) -> String {
 fn sweep_exhaustive_row_matches_a_plain_exhaustive_analysis() {
     let set = Set::new();
     let (csv_path, png_path) = (set.path("sweep.csv"), set.path("sweep.png"));
-    let out = set.sweep(&set.path("labels.jsonl"), &["--budgets", "1000,20", "--seeds", "2", "--tolerance", "100", "--max-miss-pct", "100", "--csv", csv_path.to_str().unwrap(), "--plot", png_path.to_str().unwrap()]);
+    let out = set.sweep(
+        &set.path("labels.jsonl"),
+        &[
+            "--budgets",
+            "1000,20",
+            "--seeds",
+            "2",
+            "--tolerance",
+            "100",
+            "--max-miss-pct",
+            "100",
+            "--csv",
+            csv_path.to_str().unwrap(),
+            "--plot",
+            png_path.to_str().unwrap(),
+        ],
+    );
     let stdout = text(&out.stdout);
     assert!(out.status.success(), "sweep failed: {}\n{stdout}", text(&out.stderr));
     // With a tolerance of 100 points and any share of misses allowed every budget
@@ -188,16 +229,36 @@ fn sweep_exhaustive_row_matches_a_plain_exhaustive_analysis() {
     let lines: Vec<Vec<&str>> = body.lines().map(|l| l.split(',').collect()).collect();
     let classes = vec!["dark_spot".to_string(), "bright_spot".to_string()];
     let header = [
-        "row", "budget_ms", "estimator", "analyses", "macro_f1", "f1_dark_spot", "f1_bright_spot", "ece", "coverage", "mean_patches", "p50_ms", "p99_ms", "deadline_misses", "deadline_miss_pct", "reviews",
+        "row",
+        "budget_ms",
+        "estimator",
+        "analyses",
+        "macro_f1",
+        "f1_dark_spot",
+        "f1_bright_spot",
+        "ece",
+        "coverage",
+        "mean_patches",
+        "p50_ms",
+        "p99_ms",
+        "deadline_misses",
+        "deadline_miss_pct",
+        "reviews",
     ];
     assert_eq!(lines[0], header);
     assert_eq!(csv::header(&classes), header);
     assert_eq!(lines.len(), 4, "two budgets and exhaustive (the designed bundle has no baseline): {body}");
     assert!(lines.iter().all(|l| l.len() == header.len()), "{body}");
     let col = |name: &str| header.iter().position(|h| *h == name).unwrap();
-    let num = |l: &[&str], name: &str| l[col(name)].parse::<f64>().unwrap_or_else(|e| panic!("{name} = {:?}: {e}", l[col(name)]));
+    let num = |l: &[&str], name: &str| {
+        l[col(name)].parse::<f64>().unwrap_or_else(|e| panic!("{name} = {:?}: {e}", l[col(name)]))
+    };
     let budgets: Vec<&Vec<&str>> = lines[1..].iter().filter(|l| l[0] == "budget").collect();
-    assert_eq!(budgets.iter().map(|l| num(l, "budget_ms")).collect::<Vec<_>>(), vec![20.0, 1000.0], "budgets ascending");
+    assert_eq!(
+        budgets.iter().map(|l| num(l, "budget_ms")).collect::<Vec<_>>(),
+        vec![20.0, 1000.0],
+        "budgets ascending"
+    );
     for l in &budgets {
         assert_eq!(l[col("estimator")], "priority");
         assert_eq!(num(l, "analyses"), 12.0, "6 frames × 2 seeds");
@@ -219,11 +280,17 @@ fn sweep_exhaustive_row_matches_a_plain_exhaustive_analysis() {
     let mut engine = Engine::new(bundle);
     let dense = Settings { estimator: EstimatorKind::Exhaustive, ..Settings::default() };
     let (truth, frames) = set.truth_and_frames();
-    let probs: Vec<Vec<f64>> = frames.iter().map(|f| engine.analyze(f, &dense, 9).unwrap().classes.iter().map(|c| c.probability).collect()).collect();
+    let probs: Vec<Vec<f64>> = frames
+        .iter()
+        .map(|f| engine.analyze(f, &dense, 9).unwrap().classes.iter().map(|c| c.probability).collect())
+        .collect();
     let f = metrics::f1(&truth, &metrics::predict(&probs, &thresholds));
     assert!(f.macro_f1 < 1.0, "the mislabelled frame costs F1: {f:?}");
     assert!((num(ex, "macro_f1") - f.macro_f1).abs() < 1e-12, "sweep {} vs plain {}", num(ex, "macro_f1"), f.macro_f1);
-    assert!((num(ex, "f1_dark_spot") - f.per_class[0]).abs() < 1e-12 && (num(ex, "f1_bright_spot") - f.per_class[1]).abs() < 1e-12);
+    assert!(
+        (num(ex, "f1_dark_spot") - f.per_class[0]).abs() < 1e-12
+            && (num(ex, "f1_bright_spot") - f.per_class[1]).abs() < 1e-12
+    );
     assert!((num(ex, "ece") - metrics::ece(&probs, &truth, 10)).abs() < 1e-12);
 
     // The plot is a PNG of the documented size.
@@ -231,7 +298,10 @@ fn sweep_exhaustive_row_matches_a_plain_exhaustive_analysis() {
     assert_eq!((png.width(), png.height()), (plot::WIDTH, plot::HEIGHT));
     assert_eq!(image::guess_format(&std::fs::read(&png_path).unwrap()).unwrap(), image::ImageFormat::Png);
     let rgb = png.to_rgb8();
-    assert!(rgb.pixels().any(|p| *p == plot::BLUE) && rgb.pixels().any(|p| *p == plot::RED), "F1 line and exhaustive reference drawn");
+    assert!(
+        rgb.pixels().any(|p| *p == plot::BLUE) && rgb.pixels().any(|p| *p == plot::RED),
+        "F1 line and exhaustive reference drawn"
+    );
 }
 
 #[test]
@@ -239,7 +309,10 @@ fn sweep_adds_the_thumbnail_only_row_when_the_bundle_has_a_baseline() {
     let set = Set::new();
     set.add_baseline();
     let (csv_path, png_path) = (set.path("sweep.csv"), set.path("sweep.png"));
-    let out = set.sweep(&set.path("labels.jsonl"), &["--budgets", "30", "--csv", csv_path.to_str().unwrap(), "--plot", png_path.to_str().unwrap()]);
+    let out = set.sweep(
+        &set.path("labels.jsonl"),
+        &["--budgets", "30", "--csv", csv_path.to_str().unwrap(), "--plot", png_path.to_str().unwrap()],
+    );
     assert!(out.status.success(), "sweep failed: {}", text(&out.stderr));
     let body = std::fs::read_to_string(&csv_path).unwrap();
     let lines: Vec<Vec<&str>> = body.lines().map(|l| l.split(',').collect()).collect();
@@ -248,7 +321,9 @@ fn sweep_adds_the_thumbnail_only_row_when_the_bundle_has_a_baseline() {
     assert_eq!(rows, ["budget", "exhaustive", "thumbnail-only"]);
     let thumb = &lines[3];
     let field = |name: &str| thumb[header.iter().position(|h| *h == name).unwrap()];
-    for empty in ["budget_ms", "estimator", "coverage", "mean_patches", "deadline_misses", "deadline_miss_pct", "reviews"] {
+    for empty in
+        ["budget_ms", "estimator", "coverage", "mean_patches", "deadline_misses", "deadline_miss_pct", "reviews"]
+    {
         assert_eq!(field(empty), "", "{empty} does not apply to thumbnail-only");
     }
     assert_eq!(field("analyses"), "6");
@@ -256,13 +331,22 @@ fn sweep_adds_the_thumbnail_only_row_when_the_bundle_has_a_baseline() {
     // The baseline scored separately on the same frames.
     let bundle = Bundle::load(&set.bundle, &Settings::default().batch_sizes()).unwrap();
     let (truth, frames) = set.truth_and_frames();
-    let probs: Vec<Vec<f64>> = frames.iter().map(|f| bundle.baseline_probabilities(&f.image).unwrap().expect("a baseline")).collect();
+    let probs: Vec<Vec<f64>> =
+        frames.iter().map(|f| bundle.baseline_probabilities(&f.image).unwrap().expect("a baseline")).collect();
     let f = metrics::f1(&truth, &metrics::predict(&probs, &bundle.manifest.thresholds));
     assert!(f.macro_f1 > 0.5, "the min/max baseline finds the discs: {f:?}");
     let num = |name: &str| field(name).parse::<f64>().unwrap();
-    assert!((num("macro_f1") - f.macro_f1).abs() < 1e-12 && (num("f1_dark_spot") - f.per_class[0]).abs() < 1e-12 && (num("f1_bright_spot") - f.per_class[1]).abs() < 1e-12, "{thumb:?} vs {f:?}");
+    assert!(
+        (num("macro_f1") - f.macro_f1).abs() < 1e-12
+            && (num("f1_dark_spot") - f.per_class[0]).abs() < 1e-12
+            && (num("f1_bright_spot") - f.per_class[1]).abs() < 1e-12,
+        "{thumb:?} vs {f:?}"
+    );
     assert!((num("ece") - metrics::ece(&probs, &truth, 10)).abs() < 1e-12);
-    assert!(image::open(&png_path).unwrap().to_rgb8().pixels().any(|p| *p == plot::GREEN), "the thumbnail-only reference line is drawn");
+    assert!(
+        image::open(&png_path).unwrap().to_rgb8().pixels().any(|p| *p == plot::GREEN),
+        "the thumbnail-only reference line is drawn"
+    );
 }
 
 #[test]
@@ -278,11 +362,22 @@ fn sweep_names_bad_input() {
     assert!(e.contains("unknown.jsonl:2: class \"crack\" is not one of the model's classes"), "{e}");
 
     let missing = set.path("missing.jsonl");
-    std::fs::write(&missing, "{\"frame\": \"dark.png\", \"classes\": []}\n\n{\"frame\": \"gone.png\", \"classes\": []}\n").unwrap();
+    std::fs::write(
+        &missing,
+        "{\"frame\": \"dark.png\", \"classes\": []}\n\n{\"frame\": \"gone.png\", \"classes\": []}\n",
+    )
+    .unwrap();
     let e = err(set.sweep(&missing, &["--budgets", "20"]));
-    assert!(e.contains("1 of 2 labelled frames are missing") && e.contains("missing.jsonl:3: frame \"gone.png\"") && e.contains("gone.png is not a file"), "{e}");
+    assert!(
+        e.contains("1 of 2 labelled frames are missing")
+            && e.contains("missing.jsonl:3: frame \"gone.png\"")
+            && e.contains("gone.png is not a file"),
+        "{e}"
+    );
     // --frames moves where names resolve: here nothing is found.
-    let e = err(set.sweep(&set.path("labels.jsonl"), &["--budgets", "20", "--frames", set.path("elsewhere").to_str().unwrap()]));
+    let e = err(
+        set.sweep(&set.path("labels.jsonl"), &["--budgets", "20", "--frames", set.path("elsewhere").to_str().unwrap()])
+    );
     assert!(e.contains("6 of 6 labelled frames are missing") && e.contains("… and 1 more"), "{e}");
 
     let labels = set.path("labels.jsonl");
@@ -299,15 +394,30 @@ fn sweep_names_bad_input() {
 #[test]
 fn bench_json_names_every_stage_and_rate() {
     let bundle = common::designed_bundle(&DesignedParams::default());
-    let out = Command::new(BIN).args(["bench", "--size", "640x480", "--repeats", "2", "--budgets", "25,100", "--json", "--bundle"]).arg(bundle.path()).output().unwrap();
+    let out = Command::new(BIN)
+        .args(["bench", "--size", "640x480", "--repeats", "2", "--budgets", "25,100", "--json", "--bundle"])
+        .arg(bundle.path())
+        .output()
+        .unwrap();
     assert!(out.status.success(), "{}", text(&out.stderr));
     let v: Value = serde_json::from_str(&text(&out.stdout)).unwrap();
     let stages: Vec<&str> = v["stages"].as_array().unwrap().iter().map(|s| s["stage"].as_str().unwrap()).collect();
-    for want in ["decode", "thumbnail", "attention network", "per patch, batch 16", "head + uncertainty", "whole analysis", "log write: frame record, serialise + append (sync = interval)", "log write: frame record, serialise + append (sync = always)", "dense: exhaustive over every cell (300 cells)"] {
+    for want in [
+        "decode",
+        "thumbnail",
+        "attention network",
+        "per patch, batch 16",
+        "head + uncertainty",
+        "whole analysis",
+        "log write: frame record, serialise + append (sync = interval)",
+        "log write: frame record, serialise + append (sync = always)",
+        "dense: exhaustive over every cell (300 cells)",
+    ] {
         assert!(stages.iter().any(|s| s.starts_with(want)), "no stage {want:?} in {stages:?}");
     }
     for s in v["stages"].as_array().unwrap() {
-        let (lo, mid, hi) = (s["min_ms"].as_f64().unwrap(), s["median_ms"].as_f64().unwrap(), s["max_ms"].as_f64().unwrap());
+        let (lo, mid, hi) =
+            (s["min_ms"].as_f64().unwrap(), s["median_ms"].as_f64().unwrap(), s["max_ms"].as_f64().unwrap());
         assert!(0.0 <= lo && lo <= mid && mid <= hi, "{s}");
     }
     let rates = v["frame_rates"].as_array().unwrap();

@@ -34,7 +34,8 @@ fn priority_weights_agree_with_numpy_reference() {
         "attention": a, "uniforms": u, "k": ks,
         "features": f.chunks(d).map(|r| r.iter().map(|&x| x as f64).collect::<Vec<_>>()).collect::<Vec<_>>(),
     });
-    let out: Value = serde_json::from_str(&common::run_reference("priority_sampling.py", &[], &req.to_string())).unwrap();
+    let out: Value =
+        serde_json::from_str(&common::run_reference("priority_sampling.py", &[], &req.to_string())).unwrap();
     let plan = Plan::priority_with_uniforms(&a, &u);
     assert_eq!(plan.len(), 55, "zero-attention cells are never processed");
     for (r, &k) in out.as_array().unwrap().iter().zip(&ks) {
@@ -103,9 +104,11 @@ fn tract_agrees_with_onnxruntime_on_the_test_networks() {
         ours.push((name, view.shape().to_vec(), view.iter().map(|&x| x as f64).collect::<Vec<_>>()));
         jobs.push(json!({ "model": path, "input": input, "shape": shape, "data": data }));
     }
-    let out: Value = serde_json::from_str(&common::run_reference("onnx_run.py", &[], &Value::Array(jobs).to_string())).unwrap();
+    let out: Value =
+        serde_json::from_str(&common::run_reference("onnx_run.py", &[], &Value::Array(jobs).to_string())).unwrap();
     for ((name, shape, data), theirs) in ours.iter().zip(out.as_array().unwrap()) {
-        let tshape: Vec<usize> = theirs["shape"].as_array().unwrap().iter().map(|v| v.as_u64().unwrap() as usize).collect();
+        let tshape: Vec<usize> =
+            theirs["shape"].as_array().unwrap().iter().map(|v| v.as_u64().unwrap() as usize).collect();
         assert_eq!(shape, &tshape, "{name}: output shape");
         for (x, y) in data.iter().zip(floats(&theirs["data"])) {
             assert!((x - y).abs() <= 1e-4 * (1.0 + y.abs()), "{name}: tract {x} vs onnxruntime {y}");
@@ -132,7 +135,8 @@ fn thumbnail_agrees_with_pillow_reduce() {
         // Both paths: the one frames take (SIMD where s divides the sides) and the loop.
         for (path, ours) in [("area_reduce", area_reduce(&img, s)), ("area_reduce_loop", area_reduce_loop(&img, s))] {
             assert_eq!(ours.dimensions(), theirs.dimensions(), "{path} {w}x{h}/{s}");
-            let worst = ours.as_raw().iter().zip(theirs.as_raw()).map(|(a, b)| (*a as i32 - *b as i32).abs()).max().unwrap();
+            let worst =
+                ours.as_raw().iter().zip(theirs.as_raw()).map(|(a, b)| (*a as i32 - *b as i32).abs()).max().unwrap();
             assert!(worst <= 1, "{path} {w}x{h}/{s}: differs from Pillow by {worst} grey levels");
         }
     }

@@ -23,7 +23,11 @@ fn same_seed_same_files_and_labels_that_read_back() {
     names.sort();
     assert_eq!(names.len(), 6, "5 frames and labels.jsonl: {names:?}");
     for n in &names {
-        assert_eq!(std::fs::read(a.join(n)).unwrap(), std::fs::read(b.join(n)).unwrap(), "{n:?} differs between two runs with one seed");
+        assert_eq!(
+            std::fs::read(a.join(n)).unwrap(),
+            std::fs::read(b.join(n)).unwrap(),
+            "{n:?} differs between two runs with one seed"
+        );
     }
     assert_ne!(std::fs::read(a.join("sheet-000000.jpg")).unwrap(), std::fs::read(c.join("sheet-000000.jpg")).unwrap());
     let items = read_labels(&a.join("labels.jsonl")).unwrap();

@@ -44,7 +44,19 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
     let dir = tempfile::tempdir().unwrap();
     let frames = dir.path().join("frames");
     let status = Command::new(env!("CARGO_BIN_EXE_saccade"))
-        .args(["scene", "--out", frames.to_str().unwrap(), "--count", "12", "--seed", "40", "--size", "512x384", "--format", "png"])
+        .args([
+            "scene",
+            "--out",
+            frames.to_str().unwrap(),
+            "--count",
+            "12",
+            "--seed",
+            "40",
+            "--size",
+            "512x384",
+            "--format",
+            "png",
+        ])
         .status()
         .unwrap();
     assert!(status.success());
@@ -79,17 +91,46 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
     let mut cases: Vec<(&str, &str, Vec<usize>, Vec<f32>, Vec<f32>)> = Vec::new();
     let thumb = rand(32 * 48 * 3);
     let x = CTensor::from_vec(thumb.clone(), (1, 32, 48, 3), &cpu).unwrap();
-    cases.push(("attention.onnx", "thumbnail", vec![1, 3, 32, 48], planar(&thumb, 1, 32, 48), s.attention.forward(&x).unwrap().flatten_all().unwrap().to_vec1().unwrap()));
+    cases.push((
+        "attention.onnx",
+        "thumbnail",
+        vec![1, 3, 32, 48],
+        planar(&thumb, 1, 32, 48),
+        s.attention.forward(&x).unwrap().flatten_all().unwrap().to_vec1().unwrap(),
+    ));
     let b = t.baseline.as_ref().unwrap();
-    cases.push(("baseline.onnx", "thumbnail", vec![1, 3, 32, 48], planar(&thumb, 1, 32, 48), b.forward(&x).unwrap().flatten_all().unwrap().to_vec1().unwrap()));
+    cases.push((
+        "baseline.onnx",
+        "thumbnail",
+        vec![1, 3, 32, 48],
+        planar(&thumb, 1, 32, 48),
+        b.forward(&x).unwrap().flatten_all().unwrap().to_vec1().unwrap(),
+    ));
     let patches = rand(5 * 48 * 48 * 3);
     let x = CTensor::from_vec(patches.clone(), (5, 48, 48, 3), &cpu).unwrap();
-    cases.push(("features.onnx", "patches", vec![5, 3, 48, 48], planar(&patches, 5, 48, 48), s.features.forward(&x).unwrap().flatten_all().unwrap().to_vec1().unwrap()));
+    cases.push((
+        "features.onnx",
+        "patches",
+        vec![5, 3, 48, 48],
+        planar(&patches, 5, 48, 48),
+        s.features.forward(&x).unwrap().flatten_all().unwrap().to_vec1().unwrap(),
+    ));
     let psi: Vec<f32> = rand(3 * 32).iter().map(|v| v.abs()).collect();
     let x = CTensor::from_vec(psi.clone(), (3, 32), &cpu).unwrap();
-    cases.push(("head.onnx", "psi", vec![3, 32], psi, s.head.forward(&x).unwrap().flatten_all().unwrap().to_vec1().unwrap()));
+    cases.push((
+        "head.onnx",
+        "psi",
+        vec![3, 32],
+        psi,
+        s.head.forward(&x).unwrap().flatten_all().unwrap().to_vec1().unwrap(),
+    ));
 
-    let nets = [("attention.onnx", &bundle.attention), ("baseline.onnx", bundle.baseline.as_ref().unwrap()), ("features.onnx", &bundle.features), ("head.onnx", &bundle.head)];
+    let nets = [
+        ("attention.onnx", &bundle.attention),
+        ("baseline.onnx", bundle.baseline.as_ref().unwrap()),
+        ("features.onnx", &bundle.features),
+        ("head.onnx", &bundle.head),
+    ];
     let mut jobs = Vec::new();
     let mut tract_out = Vec::new();
     for ((file, input, shape, data, trained), (_, net)) in cases.iter().zip(nets) {
@@ -100,7 +141,8 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
         jobs.push(json!({ "model": out.join(file), "input": input, "shape": shape, "data": data }));
     }
     // Reference: the ONNX checker (onnx, PyPI) and onnxruntime (PyPI), CPU, one thread.
-    let theirs: Value = serde_json::from_str(&common::run_reference("onnx_run.py", &[], &Value::Array(jobs).to_string())).unwrap();
+    let theirs: Value =
+        serde_json::from_str(&common::run_reference("onnx_run.py", &[], &Value::Array(jobs).to_string())).unwrap();
     for (((file, ..), ours), r) in cases.iter().zip(&tract_out).zip(theirs.as_array().unwrap()) {
         let r: Vec<f32> = r["data"].as_array().unwrap().iter().map(|v| v.as_f64().unwrap() as f32).collect();
         close(&format!("{file}: tract vs onnxruntime"), ours, &r);

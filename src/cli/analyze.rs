@@ -66,13 +66,20 @@ pub struct EngineLimits {
 impl EngineLimits {
     /// `base` with these patch bounds, batch and sample count.
     pub fn apply(&self, base: Settings) -> Settings {
-        Settings { min_patches: self.min_patches, max_patches: self.max_patches, batch: self.batch, samples: self.samples, ..base }
+        Settings {
+            min_patches: self.min_patches,
+            max_patches: self.max_patches,
+            batch: self.batch,
+            samples: self.samples,
+            ..base
+        }
     }
 }
 
 impl EngineArgs {
     pub fn settings(&self) -> Settings {
-        let s = self.limits.apply(Settings { budget_ms: self.budget_ms, estimator: self.estimator, ..Settings::default() });
+        let s =
+            self.limits.apply(Settings { budget_ms: self.budget_ms, estimator: self.estimator, ..Settings::default() });
         match self.patches {
             Some(k) => Settings { min_patches: k, max_patches: k, ..s },
             None => s,

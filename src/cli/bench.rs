@@ -114,7 +114,8 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     };
     let frame = decode_bytes(&bytes, origin.clone(), 0, DEFAULT_MAX_PIXELS)?;
     let (fw, fh) = (frame.width(), frame.height());
-    let mut stages = vec![measure("decode", n, || timed(|| drop(decode_bytes(&bytes, String::new(), 0, DEFAULT_MAX_PIXELS))))];
+    let mut stages =
+        vec![measure("decode", n, || timed(|| drop(decode_bytes(&bytes, String::new(), 0, DEFAULT_MAX_PIXELS))))];
     let s = m.thumbnail_factor;
     stages.push(measure("thumbnail (area loop)", n, || timed(|| drop(area_reduce_loop(&frame.image, s)))));
     stages.push(measure("thumbnail (fast_image_resize box)", n, || timed(|| drop(area_reduce_simd(&frame.image, s)))));
@@ -163,7 +164,10 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     stages.push(measure(&format!("head + uncertainty ({} samples, {k} patches)", settings.samples), n, || {
         timed(|| {
             let rows = sample_psi(&weights, &feats, d, settings.samples, &mut rng);
-            let logits = bundle.head.run(Tensor::from_shape(&[settings.samples + 1, d], &rows).expect("tensor")).expect("head runs");
+            let logits = bundle
+                .head
+                .run(Tensor::from_shape(&[settings.samples + 1, d], &rows).expect("tensor"))
+                .expect("head runs");
             let probs = probabilities(logits.as_slice().expect("dense"), m.classes.len(), m.activation);
             drop(summarise(&probs, &m.classes, &m.thresholds, settings.interval));
         })
@@ -185,10 +189,25 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     let report = report.expect("at least one repeat");
     // A typical frame record through the daemon's own log writer, once with the default
     // sync policy and once with an fsync per record.
-    let record = FrameRecord { schema: SCHEMA, record: "frame", time: rfc3339(SystemTime::now()), captured: rfc3339(frame.captured), age_ms: report.times_ms.total, report: &report };
+    let record = FrameRecord {
+        schema: SCHEMA,
+        record: "frame",
+        time: rfc3339(SystemTime::now()),
+        captured: rfc3339(frame.captured),
+        age_ms: report.times_ms.total,
+        report: &report,
+    };
     for (sync, label) in [(SyncPolicy::Interval, "sync = interval"), (SyncPolicy::Always, "sync = always")] {
         let path = std::env::temp_dir().join(format!("saccade-bench-{}.jsonl", std::process::id()));
-        let cfg = LogConfig { path: path.clone(), records: RecordPolicy::All, rotate_mb: 64.0, keep: 1, sync, sync_interval_s: 5.0, health_interval_s: 60.0 };
+        let cfg = LogConfig {
+            path: path.clone(),
+            records: RecordPolicy::All,
+            rotate_mb: 64.0,
+            keep: 1,
+            sync,
+            sync_interval_s: 5.0,
+            health_interval_s: 60.0,
+        };
         let mut log = JsonlLog::open(&cfg).with_context(|| format!("opening {}", path.display()))?;
         stages.push(measure(&format!("log write: frame record, serialise + append ({label})"), n, || {
             timed(|| {
@@ -201,7 +220,9 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     }
     let dense = Settings { estimator: EstimatorKind::Exhaustive, ..settings.clone() };
     let cells = report.cells;
-    stages.push(measure(&format!("dense: exhaustive over every cell ({cells} cells)"), n.min(3), || timed(|| drop(engine.analyze(&frame, &dense, 7).expect("analysis runs")))));
+    stages.push(measure(&format!("dense: exhaustive over every cell ({cells} cells)"), n.min(3), || {
+        timed(|| drop(engine.analyze(&frame, &dense, 7).expect("analysis runs")))
+    }));
 
     let median = |name: &str| stages.iter().find(|s| s.stage.starts_with(name)).map(|s| s.median_ms).unwrap_or(0.0);
     overhead.sort_by(f64::total_cmp);
@@ -209,9 +230,31 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     let share = overhead[overhead.len() / 2] / (median("decode") + whole);
     let decode = median("decode");
     let dense_ms = median("dense");
-    let frame_rates = args.budgets.iter().map(|&b| BudgetRate { budget_ms: b, frames_per_s: 1000.0 / (decode + b), frames_per_s_pipelined: 1000.0 / decode.max(b) }).collect();
-    let dense = Dense { cells, median_ms: dense_ms, frames_per_s: 1000.0 / (decode + dense_ms), frames_per_s_pipelined: 1000.0 / decode.max(dense_ms) };
-    let out = BenchReport { frame: origin, width: fw, height: fh, repeats: n, stages, engine_overhead_share: share, frame_rates, dense };
+    let frame_rates = args
+        .budgets
+        .iter()
+        .map(|&b| BudgetRate {
+            budget_ms: b,
+            frames_per_s: 1000.0 / (decode + b),
+            frames_per_s_pipelined: 1000.0 / decode.max(b),
+        })
+        .collect();
+    let dense = Dense {
+        cells,
+        median_ms: dense_ms,
+        frames_per_s: 1000.0 / (decode + dense_ms),
+        frames_per_s_pipelined: 1000.0 / decode.max(dense_ms),
+    };
+    let out = BenchReport {
+        frame: origin,
+        width: fw,
+        height: fh,
+        repeats: n,
+        stages,
+        engine_overhead_share: share,
+        frame_rates,
+        dense,
+    };
     if args.json {
         println!("{}", serde_json::to_string_pretty(&out)?);
     } else {
@@ -221,13 +264,22 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
         for s in &out.stages {
             println!("{:<w$} {:>9.3} {:>9.3} {:>9.3}", s.stage, s.min_ms, s.median_ms, s.max_ms);
         }
-        println!("engine overhead (all but decode and network runs): {:.1} % of the frame", 100.0 * out.engine_overhead_share);
+        println!(
+            "engine overhead (all but decode and network runs): {:.1} % of the frame",
+            100.0 * out.engine_overhead_share
+        );
         println!("frame rate a budget allows: one core (decode + budget), two threads (decode beside the budget)");
         for r in &out.frame_rates {
-            println!("  budget {:>7.1} ms → at most {:>5.1} frames/s on one core, {:>5.1} frames/s pipelined", r.budget_ms, r.frames_per_s, r.frames_per_s_pipelined);
+            println!(
+                "  budget {:>7.1} ms → at most {:>5.1} frames/s on one core, {:>5.1} frames/s pipelined",
+                r.budget_ms, r.frames_per_s, r.frames_per_s_pipelined
+            );
         }
         let d = &out.dense;
-        println!("  dense   {:>7.1} ms → at most {:>5.1} frames/s on one core, {:>5.1} frames/s pipelined ({} cells)", d.median_ms, d.frames_per_s, d.frames_per_s_pipelined, d.cells);
+        println!(
+            "  dense   {:>7.1} ms → at most {:>5.1} frames/s on one core, {:>5.1} frames/s pipelined ({} cells)",
+            d.median_ms, d.frames_per_s, d.frames_per_s_pipelined, d.cells
+        );
     }
     Ok(ExitCode::SUCCESS)
 }

@@ -33,7 +33,9 @@ pub struct DemoArgs {
 
 pub fn parse_size(s: &str) -> Result<(u32, u32), String> {
     let (w, h) = s.split_once('x').ok_or_else(|| format!("{s:?}: expected WIDTHxHEIGHT, e.g. 2448x2048"))?;
-    let parse = |v: &str| v.parse::<u32>().ok().filter(|&n| n > 0).ok_or_else(|| format!("{s:?}: {v:?} is not a positive integer"));
+    let parse = |v: &str| {
+        v.parse::<u32>().ok().filter(|&n| n > 0).ok_or_else(|| format!("{s:?}: {v:?} is not a positive integer"))
+    };
     Ok((parse(w)?, parse(h)?))
 }
 
@@ -63,7 +65,12 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
         report.times_ms.decode = Some(decode_ms);
         writeln!(out, "{}", serde_json::to_string(&report)?)?;
         let placed = generated.classes();
-        let said: Vec<String> = report.classes.iter().filter(|c| c.outcome != Outcome::Clear).map(|c| format!("{}:{:?}", c.name, c.outcome).to_lowercase()).collect();
+        let said: Vec<String> = report
+            .classes
+            .iter()
+            .filter(|c| c.outcome != Outcome::Clear)
+            .map(|c| format!("{}:{:?}", c.name, c.outcome).to_lowercase())
+            .collect();
         log::info!(
             "{}: placed [{}], engine says [{}] from {} patches ({:.0} % of attention) in {:.1} ms",
             path.display(),

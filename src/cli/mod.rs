@@ -4,7 +4,7 @@ pub mod analyze;
 pub mod bench;
 pub mod demo;
 pub mod run;
-pub mod sweep;
 pub mod scene;
+pub mod sweep;
 #[cfg(feature = "train")]
 pub mod train;

@@ -30,7 +30,8 @@ pub fn check(args: ConfigArgs) -> anyhow::Result<ExitCode> {
     let bundle = Bundle::load(&cfg.bundle, &cfg.engine.batch_sizes())?;
     cfg.check_bundle(&args.config, &bundle).map_err(anyhow::Error::msg)?;
     let stop = Arc::new(AtomicBool::new(false));
-    let running = source::start(&cfg, Arc::new(SourceCounters::default()), stop.clone()).map_err(|e| anyhow::anyhow!("{}: {e}", args.config.display()))?;
+    let running = source::start(&cfg, Arc::new(SourceCounters::default()), stop.clone())
+        .map_err(|e| anyhow::anyhow!("{}: {e}", args.config.display()))?;
     let opened = match &cfg.source {
         // A watched folder may rightly be empty; listing it was the check.
         SourceConfig::Folder { path, .. } => format!("folder {} is readable", path.display()),
@@ -43,7 +44,12 @@ pub fn check(args: ConfigArgs) -> anyhow::Result<ExitCode> {
     stop.store(true, Ordering::Relaxed);
     drop(running.frames);
     running.thread.join().ok();
-    eprintln!("config {} is valid; bundle {} loaded ({} classes); {opened}", args.config.display(), bundle.manifest.name, bundle.manifest.classes.len());
+    eprintln!(
+        "config {} is valid; bundle {} loaded ({} classes); {opened}",
+        args.config.display(),
+        bundle.manifest.name,
+        bundle.manifest.classes.len()
+    );
     print!("{}", toml::to_string_pretty(&cfg)?);
     Ok(ExitCode::SUCCESS)
 }

@@ -84,15 +84,25 @@ pub fn run(args: SceneArgs) -> anyhow::Result<ExitCode> {
                             let f = scene::generate(w, h, seed);
                             let name = format!("sheet-{n:06}.{ext}");
                             let path = args.out.join(&name);
-                            encode(&f.image, args.format, args.quality, &path).with_context(|| format!("writing {}", path.display()))?;
-                            let line = LabelLine { frame: name, classes: f.classes(), seed, width: w, height: h, defects: &f.defects, lookalikes: &f.lookalikes };
+                            encode(&f.image, args.format, args.quality, &path)
+                                .with_context(|| format!("writing {}", path.display()))?;
+                            let line = LabelLine {
+                                frame: name,
+                                classes: f.classes(),
+                                seed,
+                                width: w,
+                                height: h,
+                                defects: &f.defects,
+                                lookalikes: &f.lookalikes,
+                            };
                             Ok((n, serde_json::to_string(&line)?))
                         })
                         .collect::<Vec<anyhow::Result<(u64, String)>>>()
                 })
             })
             .collect();
-        let mut all: Vec<anyhow::Result<(u64, String)>> = handles.into_iter().flat_map(|h| h.join().expect("scene worker panicked")).collect();
+        let mut all: Vec<anyhow::Result<(u64, String)>> =
+            handles.into_iter().flat_map(|h| h.join().expect("scene worker panicked")).collect();
         all.sort_by_key(|r| r.as_ref().map_or(0, |(n, _)| *n));
         all.into_iter().map(|r| r.map(|(_, s)| s)).collect()
     });

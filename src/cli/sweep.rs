@@ -18,9 +18,9 @@ use anyhow::{bail, Context};
 use clap::Args;
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use saccade::engine::{Bundle, Engine, EstimatorKind, Settings};
+use saccade::eval::csv;
 use saccade::eval::plot::{self, SweepPlot};
 use saccade::eval::rows::{recommend, within_tolerance, Row, RowKind, Tally};
-use saccade::eval::csv;
 use saccade::labels::{class_matrix, read_labels};
 use saccade::source::decode_file;
 
@@ -115,9 +115,11 @@ struct Item {
 }
 
 fn progress(total: u64) -> ProgressBar {
-    let target = if std::io::stderr().is_terminal() { ProgressDrawTarget::stderr() } else { ProgressDrawTarget::hidden() };
+    let target =
+        if std::io::stderr().is_terminal() { ProgressDrawTarget::stderr() } else { ProgressDrawTarget::hidden() };
     let bar = ProgressBar::with_draw_target(Some(total), target);
-    let style = ProgressStyle::with_template("{bar:32} {pos}/{len} analyses  {elapsed} (eta {eta})  {msg}").expect("valid template");
+    let style = ProgressStyle::with_template("{bar:32} {pos}/{len} analyses  {elapsed} (eta {eta})  {msg}")
+        .expect("valid template");
     bar.set_style(style);
     bar
 }
@@ -134,16 +136,35 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
     let items: Vec<Item> = labels
         .iter()
         .zip(truth)
-        .map(|(l, truth)| Item { path: args.frames.as_ref().map_or_else(|| l.frame.clone(), |d| d.join(&l.name)), name: l.name.clone(), line: l.line, truth })
+        .map(|(l, truth)| Item {
+            path: args.frames.as_ref().map_or_else(|| l.frame.clone(), |d| d.join(&l.name)),
+            name: l.name.clone(),
+            line: l.line,
+            truth,
+        })
         .collect();
-    let missing: Vec<String> = items.iter().filter(|it| !it.path.is_file()).map(|it| format!("{}:{}: frame {:?}: {} is not a file", args.labels.display(), it.line, it.name, it.path.display())).collect();
+    let missing: Vec<String> = items
+        .iter()
+        .filter(|it| !it.path.is_file())
+        .map(|it| {
+            format!("{}:{}: frame {:?}: {} is not a file", args.labels.display(), it.line, it.name, it.path.display())
+        })
+        .collect();
     if !missing.is_empty() {
         let more = if missing.len() > 5 { format!("\n… and {} more", missing.len() - 5) } else { String::new() };
-        bail!("{} of {} labelled frames are missing:\n{}{more}", missing.len(), items.len(), missing[..missing.len().min(5)].join("\n"));
+        bail!(
+            "{} of {} labelled frames are missing:\n{}{more}",
+            missing.len(),
+            items.len(),
+            missing[..missing.len().min(5)].join("\n")
+        );
     }
     for (c, name) in m.classes.iter().enumerate() {
         if !items.iter().any(|it| it.truth[c]) {
-            log::warn!("{}: no frame is labelled {name:?}; its F1 is 0 by definition and lowers macro F1", args.labels.display());
+            log::warn!(
+                "{}: no frame is labelled {name:?}; its F1 is 0 by definition and lowers macro F1",
+                args.labels.display()
+            );
         }
     }
 
@@ -164,7 +185,8 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
     let n = items.len() as u64;
     for (i, it) in items.iter().enumerate() {
         bar.set_message(it.name.clone());
-        let frame = decode_file(&it.path, i as u64, args.limits.max_pixels).with_context(|| format!("{}:{}", args.labels.display(), it.line))?;
+        let frame = decode_file(&it.path, i as u64, args.limits.max_pixels)
+            .with_context(|| format!("{}:{}", args.labels.display(), it.line))?;
         let at = || format!("{}:{}: frame {}", args.labels.display(), it.line, it.path.display());
         if sizes.insert((frame.width(), frame.height())) {
             // The first analysis of a new frame size builds its plans and warms caches; it
@@ -178,7 +200,10 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
         bar.inc(1);
         if has_baseline {
             let t = Instant::now();
-            let probs = bundle.baseline_probabilities(&frame.image).with_context(at)?.expect("the bundle has a baseline network");
+            let probs = bundle
+                .baseline_probabilities(&frame.image)
+                .with_context(at)?
+                .expect("the bundle has a baseline network");
             baseline.add_probabilities(&probs, &it.truth, t.elapsed().as_secs_f64() * 1000.0);
             bar.inc(1);
         }
@@ -195,13 +220,23 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
     bar.finish_and_clear();
 
     let (t, bins) = (&m.thresholds, args.ece_bins);
-    let mut rows: Vec<Row> = tallies.into_iter().zip(&budgets).map(|(tally, &b)| tally.finish(RowKind::Budget, Some(b), Some(args.estimator), t, bins)).collect();
+    let mut rows: Vec<Row> = tallies
+        .into_iter()
+        .zip(&budgets)
+        .map(|(tally, &b)| tally.finish(RowKind::Budget, Some(b), Some(args.estimator), t, bins))
+        .collect();
     rows.push(exhaustive.finish(RowKind::Exhaustive, None, Some(EstimatorKind::Exhaustive), t, bins));
     if !baseline.is_empty() {
         rows.push(baseline.finish(RowKind::ThumbnailOnly, None, None, t, bins));
     }
 
-    println!("{} labelled frames, {} seed(s), bundle {}, thresholds {:?}", items.len(), args.seeds, args.bundle.display(), m.thresholds);
+    println!(
+        "{} labelled frames, {} seed(s), bundle {}, thresholds {:?}",
+        items.len(),
+        args.seeds,
+        args.bundle.display(),
+        m.thresholds
+    );
     print_table(&m.classes, &rows);
     if let Some(path) = &args.csv {
         std::fs::write(path, csv::to_csv(&m.classes, &rows)).with_context(|| format!("writing {}", path.display()))?;
@@ -238,7 +273,12 @@ fn print_table(classes: &[String], rows: &[Row]) {
     let body: Vec<Vec<String>> = rows
         .iter()
         .map(|r| {
-            let mut f = vec![r.row.name().to_string(), r.budget_ms.map_or_else(dash, |b| format!("{b}")), r.estimator.map_or_else(dash, |e| e.to_string()), format!("{:.3}", r.macro_f1)];
+            let mut f = vec![
+                r.row.name().to_string(),
+                r.budget_ms.map_or_else(dash, |b| format!("{b}")),
+                r.estimator.map_or_else(dash, |e| e.to_string()),
+                format!("{:.3}", r.macro_f1),
+            ];
             f.extend(r.per_class_f1.iter().map(|v| format!("{v:.3}")));
             f.extend([
                 format!("{:.3}", r.ece),
@@ -253,9 +293,16 @@ fn print_table(classes: &[String], rows: &[Row]) {
             f
         })
         .collect();
-    let widths: Vec<usize> = (0..head.len()).map(|c| std::iter::once(&head).chain(&body).map(|r| r[c].chars().count()).max().unwrap_or(0)).collect();
+    let widths: Vec<usize> = (0..head.len())
+        .map(|c| std::iter::once(&head).chain(&body).map(|r| r[c].chars().count()).max().unwrap_or(0))
+        .collect();
     for line in std::iter::once(&head).chain(&body) {
-        let cells: Vec<String> = line.iter().zip(&widths).enumerate().map(|(c, (v, w))| if c < 3 { format!("{v:<w$}") } else { format!("{v:>w$}") }).collect();
+        let cells: Vec<String> = line
+            .iter()
+            .zip(&widths)
+            .enumerate()
+            .map(|(c, (v, w))| if c < 3 { format!("{v:<w$}") } else { format!("{v:>w$}") })
+            .collect();
         println!("{}", cells.join("  ").trim_end());
     }
 }
@@ -264,7 +311,10 @@ fn print_recommendation(args: &SweepArgs, base: &Settings, rows: &[Row]) {
     let Some(ex) = rows.iter().find(|r| r.row == RowKind::Exhaustive) else { return };
     let rec = recommend(rows, args.tolerance, args.max_miss_pct);
     println!();
-    for r in within_tolerance(rows, args.tolerance).into_iter().take_while(|r| rec.is_none_or(|rec| r.budget_ms < rec.budget_ms)) {
+    for r in within_tolerance(rows, args.tolerance)
+        .into_iter()
+        .take_while(|r| rec.is_none_or(|rec| r.budget_ms < rec.budget_ms))
+    {
         println!(
             "passed over {} ms: macro F1 {:.3} is within tolerance, but {:.1} % of analyses ran past the budget (--max-miss-pct {}); min_patches = {} may not fit in it on this machine",
             r.budget_ms.unwrap_or(0.0),
@@ -276,10 +326,19 @@ fn print_recommendation(args: &SweepArgs, base: &Settings, rows: &[Row]) {
     }
     let Some(r) = rec else {
         let best = rows.iter().filter(|r| r.row == RowKind::Budget).max_by(|a, b| a.macro_f1.total_cmp(&b.macro_f1));
-        println!("no budget swept reaches macro F1 within {} points of exhaustive ({:.3}) and holds its deadline.", args.tolerance, ex.macro_f1);
+        println!(
+            "no budget swept reaches macro F1 within {} points of exhaustive ({:.3}) and holds its deadline.",
+            args.tolerance, ex.macro_f1
+        );
         if let Some(b) = best {
             let capped = b.mean_patches.unwrap_or(0.0) >= args.limits.max_patches as f64 - 0.5;
-            println!("best: {} ms at {:.3}, {:.0} patches on average; try larger budgets{}.", b.budget_ms.unwrap_or(0.0), b.macro_f1, b.mean_patches.unwrap_or(0.0), if capped { " and a larger --max-patches (the rows stop at it)" } else { "" });
+            println!(
+                "best: {} ms at {:.3}, {:.0} patches on average; try larger budgets{}.",
+                b.budget_ms.unwrap_or(0.0),
+                b.macro_f1,
+                b.mean_patches.unwrap_or(0.0),
+                if capped { " and a larger --max-patches (the rows stop at it)" } else { "" }
+            );
         }
         return;
     };
@@ -298,7 +357,12 @@ fn print_recommendation(args: &SweepArgs, base: &Settings, rows: &[Row]) {
     if base.estimator != d.estimator {
         println!("estimator = \"{}\"", base.estimator);
     }
-    for (key, v, dv) in [("min_patches", base.min_patches, d.min_patches), ("max_patches", base.max_patches, d.max_patches), ("batch", base.batch, d.batch), ("samples", base.samples, d.samples)] {
+    for (key, v, dv) in [
+        ("min_patches", base.min_patches, d.min_patches),
+        ("max_patches", base.max_patches, d.max_patches),
+        ("batch", base.batch, d.batch),
+        ("samples", base.samples, d.samples),
+    ] {
         if v != dv {
             println!("{key} = {v}");
         }

@@ -95,7 +95,11 @@ pub fn head_onnx() -> Vec<u8> {
 }
 
 pub fn manifest(p: &DesignedParams) -> Manifest {
-    let net = |file: &str, input: &str, output: &str| NetworkRef { file: file.into(), input: input.into(), output: output.into() };
+    let net = |file: &str, input: &str, output: &str| NetworkRef {
+        file: file.into(),
+        input: input.into(),
+        output: output.into(),
+    };
     Manifest {
         format: FORMAT,
         name: "designed-spots".into(),

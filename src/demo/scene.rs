@@ -35,7 +35,8 @@ pub enum DefectClass {
 }
 
 impl DefectClass {
-    pub const ALL: [DefectClass; 4] = [DefectClass::Pinhole, DefectClass::Scratch, DefectClass::Knot, DefectClass::Stain];
+    pub const ALL: [DefectClass; 4] =
+        [DefectClass::Pinhole, DefectClass::Scratch, DefectClass::Knot, DefectClass::Stain];
 
     pub fn name(&self) -> &'static str {
         CLASSES[*self as usize]
@@ -197,7 +198,11 @@ fn compose(width: u32, height: u32, seed: u64) -> Composed {
     Composed {
         #[cfg(test)]
         material,
-        marked: canvas, defects, lookalikes, rng }
+        marked: canvas,
+        defects,
+        lookalikes,
+        rng,
+    }
 }
 
 /// A centre at least `extent + 4` px from the frame edges and clear of earlier marks, or
@@ -241,7 +246,8 @@ fn paint_material(c: &mut Canvas, rng: &mut ChaCha8Rng) {
             let (xf, lx) = (x as f32, x / G);
             let tx = (x % G) as f32 / G as f32;
             let l = |i: usize, j: usize| lattice[j * gw + i];
-            let grain = (l(lx, ly) * (1.0 - tx) + l(lx + 1, ly) * tx) * (1.0 - ty) + (l(lx, ly + 1) * (1.0 - tx) + l(lx + 1, ly + 1) * tx) * ty;
+            let grain = (l(lx, ly) * (1.0 - tx) + l(lx + 1, ly) * tx) * (1.0 - ty)
+                + (l(lx, ly + 1) * (1.0 - tx) + l(lx + 1, ly + 1) * tx) * ty;
             let r2 = ((xf - hw).powi(2) + (yf - hh).powi(2)) / diag2;
             let light = level + gx * (xf / w as f32 - 0.5) + gy * (yf / h as f32 - 0.5) - vignette * r2;
             c.v[y * w + x] = light + depth * sx[x] * cy[y] + grain;
@@ -264,12 +270,16 @@ fn paint_defect(c: &mut Canvas, rng: &mut ChaCha8Rng, kind: DefectClass, x: f64,
             let width = rng.random_range(1.5..2.5);
             let ring = extent - width / 2.0;
             let dark = rng.random_range(-70.0f32..-50.0);
-            c.add(x, y, extent + 1.0, dark, move |dx, dy| (width / 2.0 + 0.5 - ((dx * dx + dy * dy).sqrt() - ring).abs()).clamp(0.0, 1.0));
+            c.add(x, y, extent + 1.0, dark, move |dx, dy| {
+                (width / 2.0 + 0.5 - ((dx * dx + dy * dy).sqrt() - ring).abs()).clamp(0.0, 1.0)
+            });
             c.add(x, y, ring, rng.random_range(10.0..25.0), disc(ring - width));
         }
         DefectClass::Stain => {
             // Irregular edge: the radius wobbles with the angle.
-            let harmonics: Vec<(f64, f64, f64)> = (2..5).map(|n| (n as f64, rng.random_range(0.03..0.12), rng.random_range(0.0..std::f64::consts::TAU))).collect();
+            let harmonics: Vec<(f64, f64, f64)> = (2..5)
+                .map(|n| (n as f64, rng.random_range(0.03..0.12), rng.random_range(0.0..std::f64::consts::TAU)))
+                .collect();
             let keep = rng.random_range(0.55f32..0.78);
             let soft = rng.random_range(2.0..5.0);
             c.around(x, y, extent * 1.4 + soft, |v, dx, dy| {

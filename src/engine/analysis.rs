@@ -44,7 +44,17 @@ pub struct Settings {
 
 impl Default for Settings {
     fn default() -> Self {
-        Self { budget_ms: 100.0, estimator: EstimatorKind::Priority, min_patches: 4, max_patches: 256, batch: 8, samples: 64, interval: 0.9, thresholds: None, seed: 0 }
+        Self {
+            budget_ms: 100.0,
+            estimator: EstimatorKind::Priority,
+            min_patches: 4,
+            max_patches: 256,
+            batch: 8,
+            samples: 64,
+            interval: 0.9,
+            thresholds: None,
+            seed: 0,
+        }
     }
 }
 
@@ -273,11 +283,21 @@ impl Engine {
 
         let t = Instant::now();
         let scores = bundle.attention.run(input)?;
-        let (rows, cols) = cell_grid(scores.shape(), th as usize, tw as usize, m.cell_stride as usize).map_err(|msg| BundleError::Network { path: bundle.attention.path.clone(), message: msg })?;
-        let geometry = Geometry { frame_w: fw, frame_h: fh, factor: m.thumbnail_factor, stride: m.cell_stride, patch: m.patch_size, rows, cols };
+        let (rows, cols) = cell_grid(scores.shape(), th as usize, tw as usize, m.cell_stride as usize)
+            .map_err(|msg| BundleError::Network { path: bundle.attention.path.clone(), message: msg })?;
+        let geometry = Geometry {
+            frame_w: fw,
+            frame_h: fh,
+            factor: m.thumbnail_factor,
+            stride: m.cell_stride,
+            patch: m.patch_size,
+            rows,
+            cols,
+        };
         let mut a = softmax(scores.as_slice().expect("dense output"));
         if let Some(factors) = self.mask_factors(&geometry)? {
-            mask::apply(&mut a, &factors).ok_or_else(|| EngineError::Mask("the mask leaves no attention on this frame".into()))?;
+            mask::apply(&mut a, &factors)
+                .ok_or_else(|| EngineError::Mask("the mask leaves no attention on this frame".into()))?;
         }
         times.attention = ms(t.elapsed());
 
@@ -348,7 +368,14 @@ impl Engine {
 
     /// Computes features along the plan's order until a stop condition; returns the
     /// number of cells done, why it stopped and their feature rows.
-    fn patch_loop(&mut self, frame: &Frame, g: &Geometry, plan: &Plan, s: &Settings, deadline: Instant) -> Result<(usize, StopReason, Vec<f32>), EngineError> {
+    fn patch_loop(
+        &mut self,
+        frame: &Frame,
+        g: &Geometry,
+        plan: &Plan,
+        s: &Settings,
+        deadline: Instant,
+    ) -> Result<(usize, StopReason, Vec<f32>), EngineError> {
         let bundle = self.bundle.clone();
         let (p, d) = (bundle.manifest.patch_size as usize, bundle.manifest.feature_dim);
         let exhaustive = plan.kind() == EstimatorKind::Exhaustive;
@@ -371,7 +398,10 @@ impl Engine {
                 *sizes.iter().rev().find(|&&b| fits(b)).expect("batch size 1 always fits")
             } else {
                 let left = deadline.saturating_duration_since(Instant::now()).as_secs_f64() - slack;
-                let cost = |b: usize| CostModel::MARGIN * (b as f64 * self.cost.per_patch.get(&b).copied().unwrap_or(f64::MAX) + self.cost.head(k + b));
+                let cost = |b: usize| {
+                    CostModel::MARGIN
+                        * (b as f64 * self.cost.per_patch.get(&b).copied().unwrap_or(f64::MAX) + self.cost.head(k + b))
+                };
                 match sizes.iter().rev().find(|&&b| fits(b) && cost(b) <= left) {
                     Some(&b) => b,
                     None => break StopReason::Budget,
@@ -381,7 +411,12 @@ impl Engine {
             let mut batch = Tensor::zero::<f32>(&[nb, 3, p, p]).expect("patch batch");
             let dst = f32_slice(&mut batch);
             for (j, &cell) in plan.order[k..k + nb].iter().enumerate() {
-                self.norm.write_patch(&frame.image, g.patch_origin(cell), p, &mut dst[j * 3 * p * p..(j + 1) * 3 * p * p]);
+                self.norm.write_patch(
+                    &frame.image,
+                    g.patch_origin(cell),
+                    p,
+                    &mut dst[j * 3 * p * p..(j + 1) * 3 * p * p],
+                );
             }
             let out = bundle.features.run(batch)?;
             feats.extend_from_slice(out.as_slice().expect("dense output"));

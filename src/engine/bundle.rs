@@ -91,8 +91,10 @@ fn net_err(path: &Path, message: impl Into<String>) -> BundleError {
 
 impl Manifest {
     pub fn read(path: &Path) -> Result<Self, BundleError> {
-        let text = std::fs::read_to_string(path).map_err(|e| manifest_err(path, format!("cannot read the bundle manifest: {e}")))?;
-        let m: Manifest = toml::from_str(&text).map_err(|e| manifest_err(path, e.to_string().trim_end().to_string()))?;
+        let text = std::fs::read_to_string(path)
+            .map_err(|e| manifest_err(path, format!("cannot read the bundle manifest: {e}")))?;
+        let m: Manifest =
+            toml::from_str(&text).map_err(|e| manifest_err(path, e.to_string().trim_end().to_string()))?;
         m.validate().map_err(|msg| manifest_err(path, msg))?;
         Ok(m)
     }
@@ -108,18 +110,30 @@ impl Manifest {
             return Err("activation = \"softmax\" needs at least two classes".into());
         }
         if self.thresholds.len() != self.classes.len() {
-            return Err(format!("thresholds: expected one per class ({}), found {}", self.classes.len(), self.thresholds.len()));
+            return Err(format!(
+                "thresholds: expected one per class ({}), found {}",
+                self.classes.len(),
+                self.thresholds.len()
+            ));
         }
         if let Some(t) = self.thresholds.iter().find(|t| !(0.0..=1.0).contains(*t)) {
             return Err(format!("thresholds: {t} is outside [0, 1]"));
         }
-        for (key, v) in [("thumbnail_factor", self.thumbnail_factor), ("cell_stride", self.cell_stride), ("patch_size", self.patch_size)] {
+        for (key, v) in [
+            ("thumbnail_factor", self.thumbnail_factor),
+            ("cell_stride", self.cell_stride),
+            ("patch_size", self.patch_size),
+        ] {
             if v == 0 {
                 return Err(format!("{key}: expected a positive integer, found 0"));
             }
         }
         if self.thumbnail_factor > super::thumbnail::MAX_FACTOR {
-            return Err(format!("thumbnail_factor = {}: at most {} is supported", self.thumbnail_factor, super::thumbnail::MAX_FACTOR));
+            return Err(format!(
+                "thumbnail_factor = {}: at most {} is supported",
+                self.thumbnail_factor,
+                super::thumbnail::MAX_FACTOR
+            ));
         }
         if self.feature_dim == 0 {
             return Err("feature_dim: expected a positive integer, found 0".into());
@@ -148,21 +162,33 @@ impl Network {
             return Err(net_err(&path, "file not found (named in bundle.toml)"));
         }
         let onnx = tract_onnx::onnx();
-        let proto = onnx.proto_model_for_path(&path).map_err(|e| net_err(&path, format!("not a readable ONNX model: {e}")))?;
+        let proto =
+            onnx.proto_model_for_path(&path).map_err(|e| net_err(&path, format!("not a readable ONNX model: {e}")))?;
         let graph = proto.graph.as_ref().ok_or_else(|| net_err(&path, "the ONNX file holds no graph"))?;
         let inits: Vec<&str> = graph.initializer.iter().map(|t| t.name.as_str()).collect();
-        let inputs: Vec<&pb::ValueInfoProto> = graph.input.iter().filter(|i| !inits.contains(&i.name.as_str())).collect();
-        let names = |v: &[&pb::ValueInfoProto]| v.iter().map(|i| format!("{:?}", i.name)).collect::<Vec<_>>().join(", ");
+        let inputs: Vec<&pb::ValueInfoProto> =
+            graph.input.iter().filter(|i| !inits.contains(&i.name.as_str())).collect();
+        let names =
+            |v: &[&pb::ValueInfoProto]| v.iter().map(|i| format!("{:?}", i.name)).collect::<Vec<_>>().join(", ");
         if inputs.len() != 1 || inputs[0].name != net.input {
-            return Err(net_err(&path, format!("expected one input named {:?}, the graph has {}", net.input, names(&inputs))));
+            return Err(net_err(
+                &path,
+                format!("expected one input named {:?}, the graph has {}", net.input, names(&inputs)),
+            ));
         }
         if !graph.output.iter().any(|o| o.name == net.output) {
             let outs: Vec<&pb::ValueInfoProto> = graph.output.iter().collect();
-            return Err(net_err(&path, format!("expected an output named {:?}, the graph has {}", net.output, names(&outs))));
+            return Err(net_err(
+                &path,
+                format!("expected an output named {:?}, the graph has {}", net.output, names(&outs)),
+            ));
         }
         if let Some(dims) = declared_dims(inputs[0]) {
             if dims.len() != rank {
-                return Err(net_err(&path, format!("input {:?} has rank {}, expected rank {rank}", net.input, dims.len())));
+                return Err(net_err(
+                    &path,
+                    format!("input {:?} has rank {}, expected rank {rank}", net.input, dims.len()),
+                ));
             }
             if let (Some(c), Some(Some(d))) = (channels, dims.get(1)) {
                 if *d != c as i64 {
@@ -208,10 +234,13 @@ impl Network {
         let plan = self.plan(input.shape())?;
         let shape = input.shape().to_vec();
         let t = Instant::now();
-        let mut out = plan.run(tvec!(input.into_tvalue())).map_err(|e| net_err(&self.path, format!("inference failed on input shape {shape:?}: {e:#}")))?;
+        let mut out = plan
+            .run(tvec!(input.into_tvalue()))
+            .map_err(|e| net_err(&self.path, format!("inference failed on input shape {shape:?}: {e:#}")))?;
         self.busy_ns.fetch_add(t.elapsed().as_nanos() as u64, Ordering::Relaxed);
         let t = out.remove(0).into_tensor();
-        let view = t.to_plain_array_view::<f32>().map_err(|e| net_err(&self.path, format!("output is not f32: {e}")))?;
+        let view =
+            t.to_plain_array_view::<f32>().map_err(|e| net_err(&self.path, format!("output is not f32: {e}")))?;
         Ok(view.to_owned())
     }
 }
@@ -220,7 +249,16 @@ fn declared_dims(v: &pb::ValueInfoProto) -> Option<Vec<Option<i64>>> {
     use pb::tensor_shape_proto::dimension::Value;
     let pb::type_proto::Value::TensorType(t) = v.r#type.as_ref()?.value.as_ref()?;
     let shape = t.shape.as_ref()?;
-    Some(shape.dim.iter().map(|d| match d.value { Some(Value::DimValue(n)) => Some(n), _ => None }).collect())
+    Some(
+        shape
+            .dim
+            .iter()
+            .map(|d| match d.value {
+                Some(Value::DimValue(n)) => Some(n),
+                _ => None,
+            })
+            .collect(),
+    )
 }
 
 /// Costs observed during the load-time dry run, used to seed the budget loop's estimates.
@@ -257,7 +295,15 @@ impl Bundle {
             Some(net) => Some(Network::load(dir.join(&net.file), net, 4, Some(3))?),
             None => None,
         };
-        let mut bundle = Self { dir: dir.to_path_buf(), manifest, attention, features, head, baseline, dry_run: DryRunCosts::default() };
+        let mut bundle = Self {
+            dir: dir.to_path_buf(),
+            manifest,
+            attention,
+            features,
+            head,
+            baseline,
+            dry_run: DryRunCosts::default(),
+        };
         bundle.dry_run = bundle.check_by_running(batch_sizes)?;
         Ok(bundle)
     }

@@ -89,7 +89,13 @@ impl Plan {
                 Self { kind, order, attention, priorities: vec![], draws: vec![] }
             }
             EstimatorKind::Replacement => {
-                let cdf: Vec<f64> = a.iter().scan(0.0, |s, &x| { *s += x; Some(*s) }).collect();
+                let cdf: Vec<f64> = a
+                    .iter()
+                    .scan(0.0, |s, &x| {
+                        *s += x;
+                        Some(*s)
+                    })
+                    .collect();
                 let total = *cdf.last().unwrap_or(&0.0);
                 let mut pos_of = vec![usize::MAX; a.len()];
                 let (mut order, mut seq) = (Vec::new(), Vec::with_capacity(draws));
@@ -161,7 +167,11 @@ impl Plan {
             }
             EstimatorKind::Replacement => {
                 // Draws before the first draw of cell k+1: every one of them is computed.
-                let n = if k == self.len() { self.draws.len() } else { self.draws.iter().position(|&p| p == k).expect("every ordered cell is drawn") };
+                let n = if k == self.len() {
+                    self.draws.len()
+                } else {
+                    self.draws.iter().position(|&p| p == k).expect("every ordered cell is drawn")
+                };
                 let mut counts = vec![0usize; k];
                 for &p in &self.draws[..n] {
                     counts[p] += 1;
@@ -169,7 +179,12 @@ impl Plan {
                 let nf = n as f64;
                 // Sample covariance / n, unbiased for the variance of the mean of n i.i.d. draws.
                 let cov = if n > 1 { 1.0 / (nf * (nf - 1.0)) } else { 0.0 };
-                Weights { w: counts.iter().map(|&m| m as f64 / nf).collect(), c: counts.iter().map(|&m| m as f64 * cov).collect(), centred: true, tau: None }
+                Weights {
+                    w: counts.iter().map(|&m| m as f64 / nf).collect(),
+                    c: counts.iter().map(|&m| m as f64 * cov).collect(),
+                    centred: true,
+                    tau: None,
+                }
             }
         }
     }

@@ -40,7 +40,11 @@ impl Mask {
         match self {
             Mask::Image(img) => {
                 if img.dimensions() != (frame_w, frame_h) {
-                    return Err(format!("mask image is {}×{}, expected the frame size {frame_w}×{frame_h}", img.width(), img.height()));
+                    return Err(format!(
+                        "mask image is {}×{}, expected the frame size {frame_w}×{frame_h}",
+                        img.width(),
+                        img.height()
+                    ));
                 }
                 if img.as_raw().iter().all(|&v| v == 0) {
                     return Err("mask image is black everywhere: it would ignore the whole frame".into());
@@ -48,7 +52,11 @@ impl Mask {
             }
             Mask::Ignore(rects) => {
                 for (n, r) in rects.iter().enumerate() {
-                    if r.width == 0 || r.height == 0 || r.x as u64 + r.width as u64 > frame_w as u64 || r.y as u64 + r.height as u64 > frame_h as u64 {
+                    if r.width == 0
+                        || r.height == 0
+                        || r.x as u64 + r.width as u64 > frame_w as u64
+                        || r.y as u64 + r.height as u64 > frame_h as u64
+                    {
                         return Err(format!(
                             "ignore rectangle {} (x={}, y={}, width={}, height={}) is empty or reaches outside the {frame_w}×{frame_h} frame",
                             n + 1,
@@ -86,7 +94,9 @@ impl Mask {
                         let mut kept = 0u64;
                         for y in y0..y1 {
                             for x in x0..x1 {
-                                let hidden = rects.iter().any(|r| x >= r.x && x < r.x + r.width && y >= r.y && y < r.y + r.height);
+                                let hidden = rects
+                                    .iter()
+                                    .any(|r| x >= r.x && x < r.x + r.width && y >= r.y && y < r.y + r.height);
                                 kept += u64::from(!hidden);
                             }
                         }

@@ -112,7 +112,9 @@ mod tests {
 
     #[test]
     fn simd_path_agrees_with_loop_on_divisible_sizes() {
-        let img = RgbImage::from_fn(96, 40, |x, y| image::Rgb([(x * 37 % 256) as u8, (y * 91 % 256) as u8, ((x * y) % 256) as u8]));
+        let img = RgbImage::from_fn(96, 40, |x, y| {
+            image::Rgb([(x * 37 % 256) as u8, (y * 91 % 256) as u8, ((x * y) % 256) as u8])
+        });
         for s in [2, 4, 8] {
             let (a, b) = (area_reduce_loop(&img, s), area_reduce_simd(&img, s));
             let worst = a.as_raw().iter().zip(b.as_raw()).map(|(p, q)| (*p as i32 - *q as i32).abs()).max().unwrap();

@@ -23,9 +23,14 @@ use super::rows::Row;
 
 /// The header row's fields for a bundle with these classes.
 pub fn header(classes: &[String]) -> Vec<String> {
-    let mut h: Vec<String> = ["row", "budget_ms", "estimator", "analyses", "macro_f1"].iter().map(|s| s.to_string()).collect();
+    let mut h: Vec<String> =
+        ["row", "budget_ms", "estimator", "analyses", "macro_f1"].iter().map(|s| s.to_string()).collect();
     h.extend(classes.iter().map(|c| format!("f1_{c}")));
-    h.extend(["ece", "coverage", "mean_patches", "p50_ms", "p99_ms", "deadline_misses", "deadline_miss_pct", "reviews"].iter().map(|s| s.to_string()));
+    h.extend(
+        ["ece", "coverage", "mean_patches", "p50_ms", "p99_ms", "deadline_misses", "deadline_miss_pct", "reviews"]
+            .iter()
+            .map(|s| s.to_string()),
+    );
     h
 }
 
@@ -43,9 +48,24 @@ fn opt<T: ToString>(v: Option<T>) -> String {
 
 /// One row's fields, in the order of [`header`].
 pub fn fields(r: &Row) -> Vec<String> {
-    let mut f = vec![r.row.name().to_string(), opt(r.budget_ms), opt(r.estimator), r.analyses.to_string(), r.macro_f1.to_string()];
+    let mut f = vec![
+        r.row.name().to_string(),
+        opt(r.budget_ms),
+        opt(r.estimator),
+        r.analyses.to_string(),
+        r.macro_f1.to_string(),
+    ];
     f.extend(r.per_class_f1.iter().map(|v| v.to_string()));
-    f.extend([r.ece.to_string(), opt(r.coverage), opt(r.mean_patches), format!("{:.3}", r.p50_ms), format!("{:.3}", r.p99_ms), opt(r.deadline_misses), opt(r.deadline_miss_pct), opt(r.reviews)]);
+    f.extend([
+        r.ece.to_string(),
+        opt(r.coverage),
+        opt(r.mean_patches),
+        format!("{:.3}", r.p50_ms),
+        format!("{:.3}", r.p99_ms),
+        opt(r.deadline_misses),
+        opt(r.deadline_miss_pct),
+        opt(r.reviews),
+    ]);
     f
 }
 

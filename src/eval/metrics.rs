@@ -103,7 +103,13 @@ pub fn ece(probs: &[Vec<f64>], truth: &[Vec<bool>], bins: usize) -> f64 {
 /// Fraction of (frame, class) pairs whose interval `[lo, hi]` contains the reference
 /// probability (closed at both ends); 0 when there are none.
 pub fn coverage(intervals: &[Vec<[f64; 2]>], reference: &[Vec<f64>]) -> f64 {
-    assert_eq!(intervals.len(), reference.len(), "coverage: intervals for {} frames, references for {}", intervals.len(), reference.len());
+    assert_eq!(
+        intervals.len(),
+        reference.len(),
+        "coverage: intervals for {} frames, references for {}",
+        intervals.len(),
+        reference.len()
+    );
     let (mut inside, mut n) = (0u64, 0u64);
     for (iv, rf) in intervals.iter().zip(reference) {
         assert_eq!(iv.len(), rf.len(), "coverage: a row's intervals and references differ in length");

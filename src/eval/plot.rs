@@ -83,11 +83,21 @@ struct YAxis {
 
 impl YAxis {
     fn nice(lo: f64, hi: f64) -> Self {
-        let (lo, hi) = if hi - lo < 1e-9 { (lo - 0.5 * lo.abs().max(1e-3), hi + 0.5 * hi.abs().max(1e-3)) } else { (lo, hi) };
+        let (lo, hi) =
+            if hi - lo < 1e-9 { (lo - 0.5 * lo.abs().max(1e-3), hi + 0.5 * hi.abs().max(1e-3)) } else { (lo, hi) };
         let raw = (hi - lo) / 5.0;
         let mag = 10f64.powf(raw.log10().floor());
         let f = raw / mag;
-        let step = mag * if f < 1.5 { 1.0 } else if f < 3.0 { 2.0 } else if f < 7.0 { 5.0 } else { 10.0 };
+        let step = mag
+            * if f < 1.5 {
+                1.0
+            } else if f < 3.0 {
+                2.0
+            } else if f < 7.0 {
+                5.0
+            } else {
+                10.0
+            };
         Self { lo: (lo / step).floor() * step, hi: (hi / step).ceil() * step, step }
     }
 
@@ -146,7 +156,14 @@ fn dot(img: &mut RgbImage, a: &Area, x: i64, y: i64, r: i64, color: Rgb<u8>) {
 }
 
 /// A 2-pixel segment clipped to `a`; `dash` carries the dash phase across segments.
-fn segment(img: &mut RgbImage, a: &Area, (x0, y0): (i64, i64), (x1, y1): (i64, i64), color: Rgb<u8>, dash: Option<&mut u32>) {
+fn segment(
+    img: &mut RgbImage,
+    a: &Area,
+    (x0, y0): (i64, i64),
+    (x1, y1): (i64, i64),
+    color: Rgb<u8>,
+    dash: Option<&mut u32>,
+) {
     let steps = (x1 - x0).abs().max((y1 - y0).abs()).max(1);
     let mut phase = dash;
     for i in 0..=steps {
@@ -170,7 +187,12 @@ fn segment(img: &mut RgbImage, a: &Area, (x0, y0): (i64, i64), (x1, y1): (i64, i
 }
 
 fn draw_line(img: &mut RgbImage, a: &Area, x: &XAxis, y: &YAxis, line: &Line) {
-    let pts: Vec<(i64, i64)> = line.points.iter().filter(|(u, v)| u.is_finite() && *u > 0.0 && v.is_finite()).map(|&(u, v)| (x.px(u, a), y.px(v, a))).collect();
+    let pts: Vec<(i64, i64)> = line
+        .points
+        .iter()
+        .filter(|(u, v)| u.is_finite() && *u > 0.0 && v.is_finite())
+        .map(|&(u, v)| (x.px(u, a), y.px(v, a)))
+        .collect();
     let mut phase = 0u32;
     for w in pts.windows(2) {
         segment(img, a, w[0], w[1], line.color, line.dashed.then_some(&mut phase));
@@ -183,7 +205,16 @@ fn draw_line(img: &mut RgbImage, a: &Area, x: &XAxis, y: &YAxis, line: &Line) {
 }
 
 /// Frame, grid, ticks and labels of one panel, then its lines and legend.
-fn panel(img: &mut RgbImage, a: Area, x: &XAxis, y: &YAxis, title: &str, budgets: &[f64], lines: &[Line], legend: &[LegendEntry]) {
+fn panel(
+    img: &mut RgbImage,
+    a: Area,
+    x: &XAxis,
+    y: &YAxis,
+    title: &str,
+    budgets: &[f64],
+    lines: &[Line],
+    legend: &[LegendEntry],
+) {
     let gh = (CAP_HEIGHT * SCALE) as i64;
     draw_text(img, a.x0, a.y0 - gh - 8, title, SCALE, INK);
     for v in y.ticks() {
@@ -269,7 +300,8 @@ pub fn render(p: &SweepPlot) -> RgbImage {
     let hi = if hi.is_finite() && hi > 0.0 { hi } else { 1.0 };
     let y = YAxis::nice(0.0, hi * 1.08);
     // y = budget, sampled along the log axis (a curve on this scale).
-    let diagonal: Vec<(f64, f64)> = (0..=64).map(|i| x.lo * (x.hi / x.lo).powf(i as f64 / 64.0)).map(|b| (b, b)).collect();
+    let diagonal: Vec<(f64, f64)> =
+        (0..=64).map(|i| x.lo * (x.hi / x.lo).powf(i as f64 / 64.0)).map(|b| (b, b)).collect();
     let lines = [
         Line { points: diagonal, color: GREY, dashed: true, markers: false },
         Line { points: series(&p.p50_ms), color: BLUE, dashed: false, markers: true },
@@ -282,7 +314,14 @@ pub fn render(p: &SweepPlot) -> RgbImage {
     ];
     panel(&mut img, bottom, &x, &y, "analysis time ms", &p.budgets, &lines, &legend);
     let label = "budget ms (log scale)";
-    draw_text(&mut img, (bottom.x0 + bottom.x1) / 2 - text_width(label, SCALE) as i64 / 2, bottom.y1 + 34, label, SCALE, INK);
+    draw_text(
+        &mut img,
+        (bottom.x0 + bottom.x1) / 2 - text_width(label, SCALE) as i64 / 2,
+        bottom.y1 + 34,
+        label,
+        SCALE,
+        INK,
+    );
     img
 }
 

@@ -103,7 +103,14 @@ impl Tally {
 
     /// The row: predictions are `probability >= threshold` per class; ECE over `bins`
     /// equal-width bins.
-    pub fn finish(mut self, row: RowKind, budget_ms: Option<f64>, estimator: Option<EstimatorKind>, thresholds: &[f64], bins: usize) -> Row {
+    pub fn finish(
+        mut self,
+        row: RowKind,
+        budget_ms: Option<f64>,
+        estimator: Option<EstimatorKind>,
+        thresholds: &[f64],
+        bins: usize,
+    ) -> Row {
         let n = self.truth.len();
         let f = metrics::f1(&self.truth, &metrics::predict(&self.probs, thresholds));
         let engine = row != RowKind::ThumbnailOnly;
@@ -178,7 +185,10 @@ mod tests {
         ];
         assert_eq!(recommend(&rows, 2.0, 5.0).unwrap().budget_ms, Some(50.0));
         assert_eq!(recommend(&rows, 1.0, 5.0).unwrap().budget_ms, Some(100.0));
-        assert_eq!(within_tolerance(&rows, 30.0).iter().map(|r| r.budget_ms.unwrap()).collect::<Vec<_>>(), vec![25.0, 50.0, 100.0]);
+        assert_eq!(
+            within_tolerance(&rows, 30.0).iter().map(|r| r.budget_ms.unwrap()).collect::<Vec<_>>(),
+            vec![25.0, 50.0, 100.0]
+        );
         assert_eq!(recommend(&rows[..3], 2.0, 5.0).map(|r| r.budget_ms), None, "no exhaustive row, no recommendation");
         let low = [row(RowKind::Budget, Some(25.0), 0.5), row(RowKind::Exhaustive, None, 0.8)];
         assert!(recommend(&low, 2.0, 5.0).is_none());

@@ -110,7 +110,16 @@ impl GraphWriter {
     }
 
     /// 2-D convolution, weights `[out, in, k, k]`, symmetric zero padding.
-    pub fn conv(&mut self, x: &str, weights: &[f32], bias: &[f32], cin: usize, k: usize, stride: usize, pad: usize) -> String {
+    pub fn conv(
+        &mut self,
+        x: &str,
+        weights: &[f32],
+        bias: &[f32],
+        cin: usize,
+        k: usize,
+        stride: usize,
+        pad: usize,
+    ) -> String {
         let cout = bias.len();
         assert_eq!(weights.len(), cout * cin * k * k, "conv weights: expected {cout}x{cin}x{k}x{k}");
         let w = self.constant("conv_w", &[cout as i64, cin as i64, k as i64, k as i64], weights);
@@ -119,7 +128,11 @@ impl GraphWriter {
         self.node(
             "Conv",
             &[x, &w, &b],
-            &[("kernel_shape", Attr::Ints(vec![k, k])), ("strides", Attr::Ints(vec![s, s])), ("pads", Attr::Ints(vec![p, p, p, p]))],
+            &[
+                ("kernel_shape", Attr::Ints(vec![k, k])),
+                ("strides", Attr::Ints(vec![s, s])),
+                ("pads", Attr::Ints(vec![p, p, p, p])),
+            ],
         )
     }
 
@@ -139,14 +152,29 @@ impl GraphWriter {
     }
 
     pub fn pool(&mut self, op: &str, x: &str, k: usize, stride: usize) -> String {
-        self.node(op, &[x], &[("kernel_shape", Attr::Ints(vec![k as i64, k as i64])), ("strides", Attr::Ints(vec![stride as i64, stride as i64]))])
+        self.node(
+            op,
+            &[x],
+            &[
+                ("kernel_shape", Attr::Ints(vec![k as i64, k as i64])),
+                ("strides", Attr::Ints(vec![stride as i64, stride as i64])),
+            ],
+        )
     }
 
     /// Max pool whose last window may hang over the edge (ONNX `ceil_mode`): every input
     /// pixel lands in some window, so a thumbnail of any size maps to `ceil(len / k)` cells.
     pub fn max_pool_ceil(&mut self, x: &str, k: usize) -> String {
         let k = k as i64;
-        self.node("MaxPool", &[x], &[("kernel_shape", Attr::Ints(vec![k, k])), ("strides", Attr::Ints(vec![k, k])), ("ceil_mode", Attr::Int(1))])
+        self.node(
+            "MaxPool",
+            &[x],
+            &[
+                ("kernel_shape", Attr::Ints(vec![k, k])),
+                ("strides", Attr::Ints(vec![k, k])),
+                ("ceil_mode", Attr::Int(1)),
+            ],
+        )
     }
 
     /// `[N, C, H, W]` → `[N, C]` by a global pool (`GlobalAveragePool` or `GlobalMaxPool`).

@@ -38,15 +38,23 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     if let Some((w, h)) = cfg.frame_size() {
         engine.prepare(w, h, &cfg.engine)?;
     }
-    let log = JsonlLog::open(&cfg.log).map_err(|e| anyhow::anyhow!("{}: cannot open the detection log: {e}", cfg.log.path.display()))?;
+    let log = JsonlLog::open(&cfg.log)
+        .map_err(|e| anyhow::anyhow!("{}: cannot open the detection log: {e}", cfg.log.path.display()))?;
     let counters = Arc::new(SourceCounters::default());
     let (sinks, sinks_thread) = worker::spawn(log, cfg.log.clone(), &cfg.evidence, counters.clone())?;
     let source_stop = Arc::new(AtomicBool::new(false));
-    let running = source::start(&cfg, counters.clone(), source_stop.clone()).map_err(|e| anyhow::anyhow!("{}: {e}", config_path.display()))?;
-    log::info!("bundle {} ({} classes) and source up; log {}", bundle.manifest.name, bundle.manifest.classes.len(), cfg.log.path.display());
+    let running = source::start(&cfg, counters.clone(), source_stop.clone())
+        .map_err(|e| anyhow::anyhow!("{}: {e}", config_path.display()))?;
+    log::info!(
+        "bundle {} ({} classes) and source up; log {}",
+        bundle.manifest.name,
+        bundle.manifest.classes.len(),
+        cfg.log.path.display()
+    );
     notify.ready("waiting for frames");
 
-    let (mut analysed, mut last_status, mut window_start, mut window_frames) = (0u64, Instant::now(), Instant::now(), 0u64);
+    let (mut analysed, mut last_status, mut window_start, mut window_frames) =
+        (0u64, Instant::now(), Instant::now(), 0u64);
     loop {
         notify.watchdog();
         if stop.load(Ordering::Relaxed) {
@@ -92,7 +100,10 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
         }
         if last_status.elapsed() >= STATUS_EVERY {
             let fps = window_frames as f64 / window_start.elapsed().as_secs_f64();
-            notify.status(&format!("{fps:.1} frames/s, {analysed} analysed, {} dropped", counters.dropped.load(Ordering::Relaxed)));
+            notify.status(&format!(
+                "{fps:.1} frames/s, {analysed} analysed, {} dropped",
+                counters.dropped.load(Ordering::Relaxed)
+            ));
             (last_status, window_start, window_frames) = (Instant::now(), Instant::now(), 0);
         }
     }
@@ -110,7 +121,10 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
 fn reload_config(path: &Path, old: &Config, bundle: &Bundle) -> Result<(Config, Option<Mask>), String> {
     let new = Config::load(path).map_err(|e| e.to_string())?;
     new.check_bundle(path, bundle)?;
-    if new.bundle != old.bundle || toml::to_string(&new.source).ok() != toml::to_string(&old.source).ok() || new.max_pixels != old.max_pixels {
+    if new.bundle != old.bundle
+        || toml::to_string(&new.source).ok() != toml::to_string(&old.source).ok()
+        || new.max_pixels != old.max_pixels
+    {
         return Err(format!("{}: bundle, max_pixels and [source] change only with a restart", path.display()));
     }
     let mask = new.mask().map_err(|e| format!("{}: [mask] {e}", path.display()))?;

@@ -15,15 +15,25 @@ pub struct Notifier {
 impl Notifier {
     /// From the environment; without `$NOTIFY_SOCKET` every call does nothing.
     pub fn from_env() -> Self {
-        let socket = std::env::var("NOTIFY_SOCKET").ok().filter(|s| !s.is_empty()).and_then(|addr| match UnixDatagram::unbound() {
-            Ok(s) => Some((s, addr)),
-            Err(e) => {
-                log::warn!("cannot create the notification socket: {e}");
-                None
-            }
-        });
-        let pid_ok = std::env::var("WATCHDOG_PID").ok().and_then(|p| p.parse::<u32>().ok()).is_none_or(|p| p == std::process::id());
-        let watchdog_every = std::env::var("WATCHDOG_USEC").ok().and_then(|u| u.parse::<u64>().ok()).filter(|&u| u > 0 && pid_ok).map(|u| Duration::from_micros(u / 2));
+        let socket =
+            std::env::var("NOTIFY_SOCKET").ok().filter(|s| !s.is_empty()).and_then(
+                |addr| match UnixDatagram::unbound() {
+                    Ok(s) => Some((s, addr)),
+                    Err(e) => {
+                        log::warn!("cannot create the notification socket: {e}");
+                        None
+                    }
+                },
+            );
+        let pid_ok = std::env::var("WATCHDOG_PID")
+            .ok()
+            .and_then(|p| p.parse::<u32>().ok())
+            .is_none_or(|p| p == std::process::id());
+        let watchdog_every = std::env::var("WATCHDOG_USEC")
+            .ok()
+            .and_then(|u| u.parse::<u64>().ok())
+            .filter(|&u| u > 0 && pid_ok)
+            .map(|u| Duration::from_micros(u / 2));
         Self { socket, watchdog_every, last_ping: None }
     }
 
@@ -31,7 +41,8 @@ impl Notifier {
         let Some((sock, addr)) = &self.socket else { return };
         let result = if let Some(name) = addr.strip_prefix('@') {
             use std::os::linux::net::SocketAddrExt;
-            std::os::unix::net::SocketAddr::from_abstract_name(name.as_bytes()).and_then(|a| sock.send_to_addr(state.as_bytes(), &a))
+            std::os::unix::net::SocketAddr::from_abstract_name(name.as_bytes())
+                .and_then(|a| sock.send_to_addr(state.as_bytes(), &a))
         } else {
             sock.send_to(state.as_bytes(), addr)
         };

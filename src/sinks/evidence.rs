@@ -53,7 +53,8 @@ impl Evidence {
             .flatten()
             .filter_map(|e| {
                 let m = e.metadata().ok()?;
-                (m.is_file() && e.file_name().to_string_lossy().ends_with(".png")).then(|| (m.modified().unwrap_or(SystemTime::UNIX_EPOCH), e.path(), m.len()))
+                (m.is_file() && e.file_name().to_string_lossy().ends_with(".png"))
+                    .then(|| (m.modified().unwrap_or(SystemTime::UNIX_EPOCH), e.path(), m.len()))
             })
             .collect();
         found.sort();

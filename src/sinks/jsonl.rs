@@ -134,7 +134,15 @@ mod tests {
     use super::*;
 
     fn cfg(dir: &Path, rotate_mb: f64, keep: usize) -> LogConfig {
-        LogConfig { path: dir.join("log.jsonl"), records: crate::config::RecordPolicy::All, rotate_mb, keep, sync: SyncPolicy::Always, sync_interval_s: 1.0, health_interval_s: 60.0 }
+        LogConfig {
+            path: dir.join("log.jsonl"),
+            records: crate::config::RecordPolicy::All,
+            rotate_mb,
+            keep,
+            sync: SyncPolicy::Always,
+            sync_interval_s: 1.0,
+            health_interval_s: 60.0,
+        }
     }
 
     #[test]
@@ -146,7 +154,10 @@ mod tests {
             log.append(format!("{{\"n\":{i},\"pad\":\"0123456789\"}}").as_bytes()).unwrap();
         }
         drop(log);
-        let sizes: Vec<u64> = ["log.jsonl", "log.jsonl.1", "log.jsonl.2"].iter().map(|f| std::fs::metadata(dir.path().join(f)).unwrap().len()).collect();
+        let sizes: Vec<u64> = ["log.jsonl", "log.jsonl.1", "log.jsonl.2"]
+            .iter()
+            .map(|f| std::fs::metadata(dir.path().join(f)).unwrap().len())
+            .collect();
         assert!(sizes.iter().all(|&s| s <= 200), "{sizes:?}");
         assert!(!dir.path().join("log.jsonl.3").exists());
         // The newest records are in the live file, in order, every line whole.

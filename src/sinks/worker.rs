@@ -47,7 +47,12 @@ pub fn not_clear(r: &Report) -> bool {
 }
 
 /// Starts the sinks thread on an opened log; it ends when every sender is gone.
-pub fn spawn(log: JsonlLog, log_cfg: LogConfig, evidence: &EvidenceConfig, counters: Arc<SourceCounters>) -> std::io::Result<(Sender<SinkMsg>, JoinHandle<()>)> {
+pub fn spawn(
+    log: JsonlLog,
+    log_cfg: LogConfig,
+    evidence: &EvidenceConfig,
+    counters: Arc<SourceCounters>,
+) -> std::io::Result<(Sender<SinkMsg>, JoinHandle<()>)> {
     let (tx, rx) = bounded(8);
     let now = Instant::now();
     let mut w = Worker {
@@ -83,7 +88,11 @@ impl Worker {
             log::error!("{}: final sync failed: {e}", self.log.path().display());
         }
         if !self.pending.is_empty() {
-            log::error!("{}: {} records could not be written before exit", self.log.path().display(), self.pending.len());
+            log::error!(
+                "{}: {} records could not be written before exit",
+                self.log.path().display(),
+                self.pending.len()
+            );
         }
     }
 
@@ -103,20 +112,37 @@ impl Worker {
                 let age_ms = SystemTime::now().duration_since(captured).unwrap_or_default().as_secs_f64() * 1000.0;
                 self.window_age.push(age_ms);
                 if look || self.log_cfg.records == RecordPolicy::All {
-                    let rec = FrameRecord { schema: SCHEMA, record: "frame", time: rfc3339(SystemTime::now()), captured: rfc3339(captured), age_ms, report: &report };
+                    let rec = FrameRecord {
+                        schema: SCHEMA,
+                        record: "frame",
+                        time: rfc3339(SystemTime::now()),
+                        captured: rfc3339(captured),
+                        age_ms,
+                        report: &report,
+                    };
                     self.write(serde_json::to_vec(&rec).expect("record serialises"));
                 }
             }
             SinkMsg::BadFrame { origin, error } => {
                 self.errors += 1;
-                let rec = ErrorRecord { schema: SCHEMA, record: "error", time: rfc3339(SystemTime::now()), origin: &origin, error: &error };
+                let rec = ErrorRecord {
+                    schema: SCHEMA,
+                    record: "error",
+                    time: rfc3339(SystemTime::now()),
+                    origin: &origin,
+                    error: &error,
+                };
                 self.write(serde_json::to_vec(&rec).expect("record serialises"));
             }
             SinkMsg::Reconfigure { log, evidence } => {
                 if log != self.log_cfg {
                     match JsonlLog::open(&log) {
                         Ok(l) => self.log = l,
-                        Err(e) => log::error!("{}: cannot open the new log, keeping {}: {e}", log.path.display(), self.log.path().display()),
+                        Err(e) => log::error!(
+                            "{}: cannot open the new log, keeping {}: {e}",
+                            log.path.display(),
+                            self.log.path().display()
+                        ),
                     }
                 }
                 self.log_cfg = log;
@@ -130,10 +156,17 @@ impl Worker {
         self.pending.push_back(line);
         while let Some(l) = self.pending.front() {
             if let Err(e) = self.log.append(l) {
-                log::error!("{}: cannot write a record ({} waiting): {e}", self.log.path().display(), self.pending.len());
+                log::error!(
+                    "{}: cannot write a record ({} waiting): {e}",
+                    self.log.path().display(),
+                    self.pending.len()
+                );
                 if self.pending.len() > PENDING_MAX {
                     self.pending.pop_front();
-                    log::error!("{}: more than {PENDING_MAX} records waiting; the oldest was discarded", self.log.path().display());
+                    log::error!(
+                        "{}: more than {PENDING_MAX} records waiting; the oldest was discarded",
+                        self.log.path().display()
+                    );
                 }
                 return;
             }

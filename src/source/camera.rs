@@ -36,9 +36,18 @@ fn frame_format(name: &str) -> FrameFormat {
 }
 
 /// Raw camera bytes in `format` to RGB.
-pub fn to_rgb(format: FrameFormat, data: &[u8], width: u32, height: u32, max_pixels: u64, origin: &str) -> Result<RgbImage, String> {
+pub fn to_rgb(
+    format: FrameFormat,
+    data: &[u8],
+    width: u32,
+    height: u32,
+    max_pixels: u64,
+    origin: &str,
+) -> Result<RgbImage, String> {
     match format {
-        FrameFormat::MJPEG => decode_bytes(data, origin.to_string(), 0, max_pixels).map(|f| f.image).map_err(|e| e.to_string()),
+        FrameFormat::MJPEG => {
+            decode_bytes(data, origin.to_string(), 0, max_pixels).map(|f| f.image).map_err(|e| e.to_string())
+        }
         FrameFormat::YUYV => yuyv_to_rgb(data, width, height),
         FrameFormat::NV12 => nv12_to_rgb(data, width, height),
         FrameFormat::RAWRGB => RgbImage::from_raw(width, height, data.to_vec()).ok_or_else(|| "short RGB frame".into()),
@@ -56,7 +65,14 @@ impl CameraSource {
         let mut cam = Camera::new(CameraIndex::Index(index), request).map_err(|e| e.to_string())?;
         cam.open_stream().map_err(|e| e.to_string())?;
         let f = cam.camera_format();
-        log::info!("{}: streaming {}×{} {:?} at {} frames/s", self.device, f.resolution().width(), f.resolution().height(), f.format(), f.frame_rate());
+        log::info!(
+            "{}: streaming {}×{} {:?} at {} frames/s",
+            self.device,
+            f.resolution().width(),
+            f.resolution().height(),
+            f.format(),
+            f.frame_rate()
+        );
         Ok(cam)
     }
 
@@ -71,7 +87,8 @@ impl CameraSource {
                     c
                 }
                 Err(e) => {
-                    let message = format!("camera {} unavailable: {e}; retrying in {} s", self.device, backoff.as_secs());
+                    let message =
+                        format!("camera {} unavailable: {e}; retrying in {} s", self.device, backoff.as_secs());
                     log::error!("{message}");
                     if !feed.send(Err(FrameError { origin: self.device.clone(), message })) || !feed.sleep(backoff) {
                         return;
@@ -86,14 +103,21 @@ impl CameraSource {
                     Ok(buf) => {
                         let res = buf.resolution();
                         let captured = SystemTime::now();
-                        to_rgb(buf.source_frame_format(), buf.buffer(), res.width(), res.height(), self.max_pixels, &self.device)
-                            .map(|image| {
-                                failures = 0;
-                                let mut f = Frame::new(seq, self.device.clone(), image);
-                                f.captured = captured;
-                                f
-                            })
-                            .map_err(|message| FrameError { origin: self.device.clone(), message })
+                        to_rgb(
+                            buf.source_frame_format(),
+                            buf.buffer(),
+                            res.width(),
+                            res.height(),
+                            self.max_pixels,
+                            &self.device,
+                        )
+                        .map(|image| {
+                            failures = 0;
+                            let mut f = Frame::new(seq, self.device.clone(), image);
+                            f.captured = captured;
+                            f
+                        })
+                        .map_err(|message| FrameError { origin: self.device.clone(), message })
                     }
                     Err(e) => {
                         failures += 1;

@@ -41,16 +41,25 @@ pub fn decode_bytes(bytes: &[u8], origin: String, seq: u64, max_pixels: u64) -> 
         Ok(f @ (ImageFormat::Jpeg | ImageFormat::Png | ImageFormat::Pnm)) => f,
         _ => return Err(DecodeError::UnknownFormat { origin }),
     };
-    let corrupt = |e: image::ImageError, origin: &str| DecodeError::Corrupt { origin: origin.to_string(), format, message: e.to_string() };
+    let corrupt = |e: image::ImageError, origin: &str| DecodeError::Corrupt {
+        origin: origin.to_string(),
+        format,
+        message: e.to_string(),
+    };
 
     // Header only: no pixel buffer exists yet.
-    let (width, height) = ImageReader::with_format(Cursor::new(bytes), format).into_dimensions().map_err(|e| corrupt(e, &origin))?;
+    let (width, height) =
+        ImageReader::with_format(Cursor::new(bytes), format).into_dimensions().map_err(|e| corrupt(e, &origin))?;
     let pixels = width as u64 * height as u64;
     if pixels > max_pixels {
         return Err(DecodeError::TooLarge { origin, width, height, pixels, limit: max_pixels });
     }
     if pixels == 0 {
-        return Err(DecodeError::Corrupt { origin, format, message: format!("the header declares {width}×{height} pixels") });
+        return Err(DecodeError::Corrupt {
+            origin,
+            format,
+            message: format!("the header declares {width}×{height} pixels"),
+        });
     }
     // Some JPEG decoders fill a truncated scan with grey instead of failing; a complete
     // file ends with the end-of-image marker (trailing padding bytes are tolerated).

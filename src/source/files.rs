@@ -18,7 +18,11 @@ pub struct FilesSource {
 pub fn expand(patterns: &[String]) -> Result<Vec<PathBuf>, String> {
     let mut files = Vec::new();
     for p in patterns {
-        let mut matched: Vec<PathBuf> = glob::glob(p).map_err(|e| format!("paths: {p:?} is not a valid pattern: {e}"))?.filter_map(Result::ok).filter(|f| f.is_file()).collect();
+        let mut matched: Vec<PathBuf> = glob::glob(p)
+            .map_err(|e| format!("paths: {p:?} is not a valid pattern: {e}"))?
+            .filter_map(Result::ok)
+            .filter(|f| f.is_file())
+            .collect();
         if matched.is_empty() {
             return Err(format!("paths: {p:?} matches no file"));
         }
@@ -41,7 +45,8 @@ impl FilesSource {
                     }
                     next += p;
                 }
-                let item = decode_file(path, seq, self.max_pixels).map_err(|e| FrameError { origin: path.display().to_string(), message: e.to_string() });
+                let item = decode_file(path, seq, self.max_pixels)
+                    .map_err(|e| FrameError { origin: path.display().to_string(), message: e.to_string() });
                 seq += 1;
                 if !feed.send(item) {
                     return;

@@ -56,7 +56,8 @@ impl FolderSource {
                             continue;
                         }
                         let now = Instant::now();
-                        let seen = watching.entry(path.clone()).or_insert(Seen { len: meta.len(), modified, since: now });
+                        let seen =
+                            watching.entry(path.clone()).or_insert(Seen { len: meta.len(), modified, since: now });
                         if seen.len != meta.len() || seen.modified != modified {
                             *seen = Seen { len: meta.len(), modified, since: now };
                         } else if now.duration_since(seen.since) >= self.stable {
@@ -72,7 +73,8 @@ impl FolderSource {
                 watching.remove(&path);
                 let origin = path.display().to_string();
                 let item = match std::fs::read(&path) {
-                    Ok(bytes) => decode_bytes(&bytes, origin.clone(), seq, self.max_pixels).map_err(|e| FrameError { origin, message: e.to_string() }),
+                    Ok(bytes) => decode_bytes(&bytes, origin.clone(), seq, self.max_pixels)
+                        .map_err(|e| FrameError { origin, message: e.to_string() }),
                     Err(e) => Err(FrameError { origin, message: format!("cannot read the file: {e}") }),
                 };
                 seq += 1;
@@ -95,7 +97,8 @@ impl FolderSource {
             (AfterUse::Delete, _) => std::fs::remove_file(path),
             (AfterUse::Move, Some(dir)) => {
                 let dest = dir.join(path.file_name().expect("a listed file has a name"));
-                std::fs::rename(path, &dest).or_else(|_| std::fs::copy(path, &dest).and_then(|_| std::fs::remove_file(path)))
+                std::fs::rename(path, &dest)
+                    .or_else(|_| std::fs::copy(path, &dest).and_then(|_| std::fs::remove_file(path)))
             }
             _ => {
                 let meta = std::fs::metadata(path).ok()?;

@@ -35,17 +35,31 @@ pub struct Running {
 pub fn start(cfg: &Config, counters: Arc<SourceCounters>, stop: Arc<AtomicBool>) -> Result<Running, String> {
     let max_pixels = cfg.max_pixels;
     let overload = match &cfg.source {
-        SourceConfig::Folder { overload, .. } | SourceConfig::Files { overload, .. } | SourceConfig::Scene { overload, .. } => *overload,
+        SourceConfig::Folder { overload, .. }
+        | SourceConfig::Files { overload, .. }
+        | SourceConfig::Scene { overload, .. } => *overload,
         SourceConfig::Camera { .. } => Overload::DropOldest,
     };
     let (feed, frames) = feed::feed(overload, counters, stop);
-    let spawn = |name: &str, f: Box<dyn FnOnce() + Send>| std::thread::Builder::new().name(name.into()).spawn(f).map_err(|e| format!("cannot start the source thread: {e}"));
+    let spawn = |name: &str, f: Box<dyn FnOnce() + Send>| {
+        std::thread::Builder::new()
+            .name(name.into())
+            .spawn(f)
+            .map_err(|e| format!("cannot start the source thread: {e}"))
+    };
     let thread = match cfg.source.clone() {
         SourceConfig::Folder { path, after, move_to, stable_ms, poll_ms, .. } => {
             if !path.is_dir() {
                 return Err(format!("[source] path {}: not a folder", path.display()));
             }
-            let s = folder::FolderSource { dir: path, after, move_to, stable: Duration::from_millis(stable_ms), poll: Duration::from_millis(poll_ms), max_pixels };
+            let s = folder::FolderSource {
+                dir: path,
+                after,
+                move_to,
+                stable: Duration::from_millis(stable_ms),
+                poll: Duration::from_millis(poll_ms),
+                max_pixels,
+            };
             spawn("source-folder", Box::new(move || s.run(feed)))?
         }
         SourceConfig::Files { paths, rate_fps, repeat, .. } => {
@@ -64,7 +78,11 @@ pub fn start(cfg: &Config, counters: Arc<SourceCounters>, stop: Arc<AtomicBool>)
             spawn("source-camera", Box::new(move || s.run(feed)))?
         }
         #[cfg(not(feature = "camera"))]
-        SourceConfig::Camera { device, .. } => return Err(format!("[source] camera {device}: this build has no camera support (cargo feature \"camera\")")),
+        SourceConfig::Camera { device, .. } => {
+            return Err(format!(
+                "[source] camera {device}: this build has no camera support (cargo feature \"camera\")"
+            ))
+        }
     };
     Ok(Running { frames, thread })
 }

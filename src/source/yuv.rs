@@ -32,7 +32,11 @@ fn pixel(y: u8, u: u8, v: u8) -> [u8; 3] {
 pub fn yuyv_to_rgb(data: &[u8], width: u32, height: u32) -> Result<RgbImage, String> {
     let (w, h) = (width as usize, height as usize);
     if w % 2 != 0 || data.len() < w * h * 2 {
-        return Err(format!("YUYV frame of {width}×{height} needs an even width and {} bytes, got {}", w * h * 2, data.len()));
+        return Err(format!(
+            "YUYV frame of {width}×{height} needs an even width and {} bytes, got {}",
+            w * h * 2,
+            data.len()
+        ));
     }
     let mut out = Vec::with_capacity(w * h * 3);
     for q in data[..w * h * 2].chunks_exact(4) {

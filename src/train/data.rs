@@ -39,7 +39,14 @@ pub struct Dataset {
 
 impl Dataset {
     /// Decodes every labelled frame (all of one size) and prepares its thumbnail.
-    pub fn load(labels: &Path, items: &[Labelled], classes: &[String], shape: Shape, norm: &Normalization, max_pixels: u64) -> anyhow::Result<Self> {
+    pub fn load(
+        labels: &Path,
+        items: &[Labelled],
+        classes: &[String],
+        shape: Shape,
+        norm: &Normalization,
+        max_pixels: u64,
+    ) -> anyhow::Result<Self> {
         let targets = class_matrix(items, classes, labels)?;
         let normalizer = Normalizer::new(norm);
         let workers = std::thread::available_parallelism().map_or(1, |n| n.get());
@@ -48,11 +55,18 @@ impl Dataset {
                 .map(|k| {
                     let normalizer = &normalizer;
                     s.spawn(move || {
-                        items.iter().enumerate().skip(k).step_by(workers).map(|(i, it)| {
-                            let frame = decode_file(&it.frame, i as u64, max_pixels).map_err(|e| anyhow::anyhow!("{}:{}: {e}", labels.display(), it.line))?;
-                            let thumb = thumbnail(&frame.image, shape, normalizer);
-                            Ok((i, (frame.image, thumb)))
-                        }).collect::<Vec<anyhow::Result<(usize, (RgbImage, Vec<f32>))>>>()
+                        items
+                            .iter()
+                            .enumerate()
+                            .skip(k)
+                            .step_by(workers)
+                            .map(|(i, it)| {
+                                let frame = decode_file(&it.frame, i as u64, max_pixels)
+                                    .map_err(|e| anyhow::anyhow!("{}:{}: {e}", labels.display(), it.line))?;
+                                let thumb = thumbnail(&frame.image, shape, normalizer);
+                                Ok((i, (frame.image, thumb)))
+                            })
+                            .collect::<Vec<anyhow::Result<(usize, (RgbImage, Vec<f32>))>>>()
                     })
                 })
                 .collect();
@@ -78,14 +92,32 @@ impl Dataset {
                     );
                 }
             }
-            samples.push(Sample { name: it.name.clone(), image, thumb, target: target.iter().map(|&b| b as u8 as f32).collect() });
+            samples.push(Sample {
+                name: it.name.clone(),
+                image,
+                thumb,
+                target: target.iter().map(|&b| b as u8 as f32).collect(),
+            });
         }
         let (w, h) = (samples[0].image.width(), samples[0].image.height());
         let (rows, cols) = cells(w, h, shape);
         if rows == 0 || cols == 0 {
-            anyhow::bail!("{}: frames of {w}×{h} give no whole attention cell at factor {} and stride {}", labels.display(), shape.factor, shape.stride);
+            anyhow::bail!(
+                "{}: frames of {w}×{h} give no whole attention cell at factor {} and stride {}",
+                labels.display(),
+                shape.factor,
+                shape.stride
+            );
         }
-        let geometry = Geometry { frame_w: w, frame_h: h, factor: shape.factor, stride: shape.stride, patch: shape.patch, rows, cols };
+        let geometry = Geometry {
+            frame_w: w,
+            frame_h: h,
+            factor: shape.factor,
+            stride: shape.stride,
+            patch: shape.patch,
+            rows,
+            cols,
+        };
         let s = shape.stride as usize;
         Ok(Self { samples, geometry, thumb_hw: (rows * s, cols * s), normalizer })
     }

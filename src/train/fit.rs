@@ -79,10 +79,18 @@ impl<'a> Frozen<'a> {
 
 /// Draws `k` cells per frame from `rows` and runs the feature network on their patches:
 /// features `[B, k, D]` and the cells drawn.
-fn sampled_features(m: &Sampled, data: &Dataset, idx: &[usize], rows: &[&[f32]], k: usize, rng: &mut ChaCha8Rng) -> Result<(Tensor, Vec<u32>)> {
+fn sampled_features(
+    m: &Sampled,
+    data: &Dataset,
+    idx: &[usize],
+    rows: &[&[f32]],
+    k: usize,
+    rng: &mut ChaCha8Rng,
+) -> Result<(Tensor, Vec<u32>)> {
     let p = data.geometry.patch as usize;
     let (b, e) = (idx.len(), m.features.c1.k);
-    let (mut picks, mut planar, mut pixels) = (Vec::with_capacity(b * k), Vec::new(), Vec::with_capacity(b * k * p * p * 3));
+    let (mut picks, mut planar, mut pixels) =
+        (Vec::with_capacity(b * k), Vec::new(), Vec::with_capacity(b * k * p * p * 3));
     for (row, &i) in rows.iter().zip(idx) {
         for _ in 0..k {
             let cell = draw(row, rng);
@@ -97,7 +105,13 @@ fn sampled_features(m: &Sampled, data: &Dataset, idx: &[usize], rows: &[&[f32]],
 impl Model for Frozen<'_> {
     const NAME: &'static str = "warm-up";
 
-    fn logits(&self, data: &Dataset, idx: &[usize], rng: &mut ChaCha8Rng, o: &FitOptions) -> Result<(Tensor, Option<Tensor>)> {
+    fn logits(
+        &self,
+        data: &Dataset,
+        idx: &[usize],
+        rng: &mut ChaCha8Rng,
+        o: &FitOptions,
+    ) -> Result<(Tensor, Option<Tensor>)> {
         let rows: Vec<&[f32]> = idx.iter().map(|&i| self.attention[i].as_slice()).collect();
         let (f, _) = sampled_features(self.model, data, idx, &rows, o.patches, rng)?;
         Ok((self.model.head.forward(&f.mean(1)?)?, None))
@@ -108,7 +122,13 @@ impl Model for Frozen<'_> {
 pub trait Model {
     const NAME: &'static str;
     /// Logits `[B, C]` for the frames `idx`, plus a term added to the loss.
-    fn logits(&self, data: &Dataset, idx: &[usize], rng: &mut ChaCha8Rng, o: &FitOptions) -> Result<(Tensor, Option<Tensor>)>;
+    fn logits(
+        &self,
+        data: &Dataset,
+        idx: &[usize],
+        rng: &mut ChaCha8Rng,
+        o: &FitOptions,
+    ) -> Result<(Tensor, Option<Tensor>)>;
 }
 
 fn thumbs(data: &Dataset, idx: &[usize]) -> Result<Tensor> {
@@ -129,7 +149,13 @@ fn targets(data: &Dataset, idx: &[usize]) -> Result<Tensor> {
 impl Model for Sampled {
     const NAME: &'static str = "sampled";
 
-    fn logits(&self, data: &Dataset, idx: &[usize], rng: &mut ChaCha8Rng, o: &FitOptions) -> Result<(Tensor, Option<Tensor>)> {
+    fn logits(
+        &self,
+        data: &Dataset,
+        idx: &[usize],
+        rng: &mut ChaCha8Rng,
+        o: &FitOptions,
+    ) -> Result<(Tensor, Option<Tensor>)> {
         let (b, k) = (idx.len(), o.patches);
         let log_a = log_attention(&self.attention.forward_folded(&thumbs(data, idx)?)?)?;
         let a = log_a.exp()?;
@@ -150,13 +176,25 @@ impl Model for Sampled {
 impl Model for Baseline {
     const NAME: &'static str = "baseline";
 
-    fn logits(&self, data: &Dataset, idx: &[usize], _rng: &mut ChaCha8Rng, _o: &FitOptions) -> Result<(Tensor, Option<Tensor>)> {
+    fn logits(
+        &self,
+        data: &Dataset,
+        idx: &[usize],
+        _rng: &mut ChaCha8Rng,
+        _o: &FitOptions,
+    ) -> Result<(Tensor, Option<Tensor>)> {
         Ok((self.forward_folded(&thumbs(data, idx)?)?, None))
     }
 }
 
 /// Mean loss and macro F1 of `m` on the frames `val`.
-pub fn evaluate<M: Model>(m: &M, data: &Dataset, val: &[usize], rng: &mut ChaCha8Rng, o: &FitOptions) -> Result<(f64, f64)> {
+pub fn evaluate<M: Model>(
+    m: &M,
+    data: &Dataset,
+    val: &[usize],
+    rng: &mut ChaCha8Rng,
+    o: &FitOptions,
+) -> Result<(f64, f64)> {
     let (mut loss, mut all) = (0.0, Vec::new());
     for chunk in val.chunks(o.batch) {
         let (z, _) = m.logits(data, chunk, rng, o)?;
@@ -165,15 +203,27 @@ pub fn evaluate<M: Model>(m: &M, data: &Dataset, val: &[usize], rng: &mut ChaCha
     }
     // Predicted at probability 0.5, i.e. logit 0.
     let pred: Vec<Vec<bool>> = all.iter().map(|z| z.iter().map(|&v| v > 0.0).collect()).collect();
-    let truth: Vec<Vec<bool>> = val.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
+    let truth: Vec<Vec<bool>> =
+        val.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
     Ok((loss / val.len() as f64, crate::eval::metrics::f1(&truth, &pred).macro_f1))
 }
 
 /// Trains `m` with AdamW, keeps the weights of the epoch with the lowest validation
 /// loss and stops after `patience` epochs without improvement.
 #[allow(clippy::too_many_arguments)]
-pub fn fit<M: Model>(m: &M, vars: &[Var], data: &Dataset, train: &[usize], val: &[usize], o: &FitOptions, rng: &mut ChaCha8Rng, log: &mut Vec<EpochLog>, bars: &MultiProgress) -> anyhow::Result<()> {
-    let mut opt = AdamW::new(vars.to_vec(), ParamsAdamW { lr: o.learning_rate, weight_decay: 1e-4, ..Default::default() })?;
+pub fn fit<M: Model>(
+    m: &M,
+    vars: &[Var],
+    data: &Dataset,
+    train: &[usize],
+    val: &[usize],
+    o: &FitOptions,
+    rng: &mut ChaCha8Rng,
+    log: &mut Vec<EpochLog>,
+    bars: &MultiProgress,
+) -> anyhow::Result<()> {
+    let mut opt =
+        AdamW::new(vars.to_vec(), ParamsAdamW { lr: o.learning_rate, weight_decay: 1e-4, ..Default::default() })?;
     let mut best: Option<(f64, Vec<Tensor>)> = None;
     let mut since_best = 0;
     let mut order = train.to_vec();
@@ -182,7 +232,9 @@ pub fn fit<M: Model>(m: &M, vars: &[Var], data: &Dataset, train: &[usize], val: 
         let t0 = Instant::now();
         order.shuffle(rng);
         let bar = bars.add(ProgressBar::new(steps as u64)).with_style(
-            ProgressStyle::with_template("{prefix} [{bar:30}] {pos}/{len} {msg} ({eta})").expect("valid template").progress_chars("=> "),
+            ProgressStyle::with_template("{prefix} [{bar:30}] {pos}/{len} {msg} ({eta})")
+                .expect("valid template")
+                .progress_chars("=> "),
         );
         bar.set_prefix(format!("{} epoch {epoch}/{}", M::NAME, o.epochs));
         let mut total = 0.0;
@@ -200,7 +252,14 @@ pub fn fit<M: Model>(m: &M, vars: &[Var], data: &Dataset, train: &[usize], val: 
         }
         bar.finish_and_clear();
         let (val_loss, val_f1) = evaluate(m, data, val, rng, o)?;
-        let entry = EpochLog { model: M::NAME, epoch, train_loss: total / order.len() as f64, val_loss, val_macro_f1: val_f1, seconds: t0.elapsed().as_secs_f64() };
+        let entry = EpochLog {
+            model: M::NAME,
+            epoch,
+            train_loss: total / order.len() as f64,
+            val_loss,
+            val_macro_f1: val_f1,
+            seconds: t0.elapsed().as_secs_f64(),
+        };
         log::info!(
             "{} epoch {epoch}: train loss {:.4}, validation loss {:.4}, validation macro F1 {:.3} ({:.1} s)",
             M::NAME,

@@ -89,13 +89,19 @@ impl Conv {
             }
             (Tensor::cat(&parts, 3)?, h, w)
         };
-        cols.reshape((n * oh * ow, k * k * c))?.matmul(self.w.as_tensor())?.broadcast_add(self.b.as_tensor())?.reshape((n, oh, ow, self.cout))
+        cols.reshape((n * oh * ow, k * k * c))?
+            .matmul(self.w.as_tensor())?
+            .broadcast_add(self.b.as_tensor())?
+            .reshape((n, oh, ow, self.cout))
     }
 
     /// A patch embedding (`stride == k`) applied to input already folded by [`fold`].
     pub fn forward_folded(&self, x: &Tensor) -> Result<Tensor> {
         let (n, oh, ow, kkc) = x.dims4()?;
-        x.reshape((n * oh * ow, kkc))?.matmul(self.w.as_tensor())?.broadcast_add(self.b.as_tensor())?.reshape((n, oh, ow, self.cout))
+        x.reshape((n * oh * ow, kkc))?
+            .matmul(self.w.as_tensor())?
+            .broadcast_add(self.b.as_tensor())?
+            .reshape((n, oh, ow, self.cout))
     }
 
     pub fn onnx(&self, g: &mut GraphWriter, x: &str) -> Result<String> {
@@ -124,7 +130,12 @@ impl Conv {
 pub fn fold(x: &Tensor, k: usize) -> Result<Tensor> {
     let (n, h, w, c) = x.dims4()?;
     let (oh, ow) = (h / k, w / k);
-    x.narrow(1, 0, oh * k)?.narrow(2, 0, ow * k)?.reshape((n, oh, k, ow, k, c))?.permute((0, 1, 3, 2, 4, 5))?.reshape((n, oh, ow, k * k * c))
+    x.narrow(1, 0, oh * k)?.narrow(2, 0, ow * k)?.reshape((n, oh, k, ow, k, c))?.permute((0, 1, 3, 2, 4, 5))?.reshape((
+        n,
+        oh,
+        ow,
+        k * k * c,
+    ))
 }
 
 /// Fully connected layer on `[N, din]`.

@@ -64,12 +64,18 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     }
     let classes = if o.classes.is_empty() { crate::labels::all_classes(&items) } else { o.classes.clone() };
     if classes.is_empty() {
-        anyhow::bail!("{}: no frame names a class, so there is nothing to learn (or pass --classes)", o.labels.display());
+        anyhow::bail!(
+            "{}: no frame names a class, so there is nothing to learn (or pass --classes)",
+            o.labels.display()
+        );
     }
     let data = Dataset::load(&o.labels, &items, &classes, o.shape, &NORMALIZATION, o.max_pixels)?;
     let n = data.samples.len();
     if n < 2 {
-        anyhow::bail!("{}: at least 2 labelled frames are needed (one to train on, one to validate)", o.labels.display());
+        anyhow::bail!(
+            "{}: at least 2 labelled frames are needed (one to train on, one to validate)",
+            o.labels.display()
+        );
     }
     let mut rng = ChaCha8Rng::seed_from_u64(o.seed);
     let mut order: Vec<usize> = (0..n).collect();
@@ -100,17 +106,33 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
                 let b = Baseline::new(&mut bp, &o.arch, classes)?;
                 let mut log = Vec::new();
                 let opts = FitOptions { epochs: o.baseline_epochs, ..o.fit.clone() };
-                fit(&b, &bp.vars, data, train, val, &opts, &mut ChaCha8Rng::seed_from_u64(o.seed ^ 0xba5e), &mut log, bars)?;
+                fit(
+                    &b,
+                    &bp.vars,
+                    data,
+                    train,
+                    val,
+                    &opts,
+                    &mut ChaCha8Rng::seed_from_u64(o.seed ^ 0xba5e),
+                    &mut log,
+                    bars,
+                )?;
                 Ok((b, log))
             })
         });
         let mut params = Params::new(ChaCha8Rng::seed_from_u64(o.seed ^ 0x5eed));
         let attention = AttentionNet::new(&mut params, &o.arch, o.shape.stride as usize, ATTENTION_GAIN)?;
         let attention_vars = params.vars.len();
-        let sampled = Sampled { attention, features: FeatureNet::new(&mut params, &o.arch, o.shape.patch as usize)?, head: Head::new(&mut params, &o.arch, classes.len())? };
+        let sampled = Sampled {
+            attention,
+            features: FeatureNet::new(&mut params, &o.arch, o.shape.patch as usize)?,
+            head: Head::new(&mut params, &o.arch, classes.len())?,
+        };
         let mut log = Vec::new();
         // Same draws before and after, so the change is the weights' alone.
-        let loss_on_train = |m: &Sampled| fit::evaluate(m, &data, train, &mut ChaCha8Rng::seed_from_u64(o.seed ^ 0x1055), &o.fit).map(|(l, _)| l);
+        let loss_on_train = |m: &Sampled| {
+            fit::evaluate(m, &data, train, &mut ChaCha8Rng::seed_from_u64(o.seed ^ 0x1055), &o.fit).map(|(l, _)| l)
+        };
         let loss_before = loss_on_train(&sampled)?;
         if o.fit.warmup > 0 {
             let frozen = Frozen::new(&sampled, &data, o.fit.batch)?;
@@ -148,7 +170,11 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
 }
 
 fn manifest(o: &TrainOptions, classes: &[String], description: &str) -> Manifest {
-    let net = |file: &str, input: &str, output: &str| NetworkRef { file: file.into(), input: input.into(), output: output.into() };
+    let net = |file: &str, input: &str, output: &str| NetworkRef {
+        file: file.into(),
+        input: input.into(),
+        output: output.into(),
+    };
     Manifest {
         format: FORMAT,
         name: o.name.clone(),
@@ -169,10 +195,18 @@ fn manifest(o: &TrainOptions, classes: &[String], description: &str) -> Manifest
 }
 
 /// Writes the ONNX files, `bundle.toml` and `training.jsonl` (one line per epoch).
-pub fn write_bundle(dir: &Path, s: &Sampled, baseline: Option<&Baseline>, m: &Manifest, log: &[EpochLog]) -> anyhow::Result<()> {
+pub fn write_bundle(
+    dir: &Path,
+    s: &Sampled,
+    baseline: Option<&Baseline>,
+    m: &Manifest,
+    log: &[EpochLog],
+) -> anyhow::Result<()> {
     use anyhow::Context;
     std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
-    let write = |name: &str, bytes: Vec<u8>| std::fs::write(dir.join(name), bytes).with_context(|| format!("writing {}", dir.join(name).display()));
+    let write = |name: &str, bytes: Vec<u8>| {
+        std::fs::write(dir.join(name), bytes).with_context(|| format!("writing {}", dir.join(name).display()))
+    };
     write("attention.onnx", s.attention.onnx()?)?;
     write("features.onnx", s.features.onnx()?)?;
     write("head.onnx", s.head.onnx()?)?;

@@ -26,7 +26,14 @@ pub struct Arch {
 impl Arch {
     /// Named shapes of the feature network; `compact` is the default.
     pub fn preset(name: &str) -> Option<Self> {
-        let base = Self { attention: 8, embed: 4, features: [16, 32], feature_dim: 32, head_hidden: 32, baseline: [12, 16, 32] };
+        let base = Self {
+            attention: 8,
+            embed: 4,
+            features: [16, 32],
+            feature_dim: 32,
+            head_hidden: 32,
+            baseline: [12, 16, 32],
+        };
         match name {
             "compact" => Some(base),
             "wide" => Some(Self { features: [32, 64], ..base }),
@@ -71,7 +78,9 @@ impl AttentionNet {
         let c2 = Conv::new(p, ch, ch, 3, 1)?;
         let c3 = Conv::new(p, ch, ch, 1, 1)?;
         let c4 = Conv::new(p, ch, 1, 1, 1)?;
-        let small = |p: &mut Params, n: usize| -> Vec<f32> { (0..n).map(|_| rand::Rng::random_range(p.rng(), -0.05f32..0.05)).collect() };
+        let small = |p: &mut Params, n: usize| -> Vec<f32> {
+            (0..n).map(|_| rand::Rng::random_range(p.rng(), -0.05f32..0.05)).collect()
+        };
         // Rows are (dy, dx, c); columns output channels.
         let mut w1 = small(p, 12 * ch);
         for r in 0..12 {
@@ -142,7 +151,13 @@ impl FeatureNet {
     pub fn new(p: &mut Params, a: &Arch, patch: usize) -> Result<Self> {
         assert!(patch % (2 * a.embed) == 0, "patch size must be a multiple of twice the embedding side");
         let [f1, f2] = a.features;
-        Ok(Self { c1: Conv::new(p, 3, f1, a.embed, a.embed)?, c2: Conv::new(p, f1, f2, 3, 1)?, c3: Conv::new(p, f2, a.feature_dim, 3, 1)?, patch, dim: a.feature_dim })
+        Ok(Self {
+            c1: Conv::new(p, 3, f1, a.embed, a.embed)?,
+            c2: Conv::new(p, f1, f2, 3, 1)?,
+            c3: Conv::new(p, f2, a.feature_dim, 3, 1)?,
+            patch,
+            dim: a.feature_dim,
+        })
     }
 
     /// `[N, P, P, 3]` → `[N, D]`.
