@@ -3,8 +3,10 @@
 //! The file is JSON Lines, one object per frame:
 //! `{"frame": "sheet-000001.jpg", "classes": ["pinhole", "stain"]}`. `frame` is a path
 //! relative to the labels file's folder (or absolute); `classes` lists the classes present
-//! (empty for a clean frame). Other keys are allowed and ignored, so a generator can
-//! record where it put things. Blank lines are skipped.
+//! (empty for a clean frame). An optional `defects` list gives where marks are, each
+//! `{"kind": CLASS, "x": X, "y": Y}` in frame pixels; training never reads it, but
+//! `saccade sweep` uses it to say whether attention looked at the marks. Other keys are
+//! allowed and ignored. Blank lines are skipped.
 
 use std::path::{Path, PathBuf};
 
@@ -28,12 +30,29 @@ pub struct Labelled {
     pub classes: Vec<String>,
     /// Line of the labels file (1-based), for error messages.
     pub line: usize,
+    /// Known positions of marks (optional; for diagnostics only).
+    pub marks: Vec<MarkAt>,
+}
+
+/// Where a mark of a class is, in frame pixels.
+#[derive(Clone, Debug, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct MarkAt {
+    #[serde(rename = "kind")]
+    pub class: String,
+    pub x: f64,
+    pub y: f64,
+    /// Radius in pixels of the circle that holds the mark, when known.
+    #[serde(default)]
+    pub extent: Option<f64>,
 }
 
 #[derive(Deserialize)]
 struct Line {
     frame: String,
     classes: Vec<String>,
+    #[serde(default)]
+    defects: Vec<MarkAt>,
 }
 
 pub fn read_labels(path: &Path) -> Result<Vec<Labelled>, LabelError> {
@@ -58,7 +77,13 @@ pub fn read_labels(path: &Path) -> Result<Vec<Labelled>, LabelError> {
         let mut classes = l.classes;
         classes.sort();
         classes.dedup();
-        out.push(Labelled { frame: base.join(&l.frame), name: l.frame, classes, line });
+        if let Some(m) = l.defects.iter().find(|m| !classes.contains(&m.class)) {
+            return Err(err(Some(line), format!("defects: a {:?} mark, but \"classes\" does not list {:?}", m.class, m.class)));
+        }
+        if let Some(m) = l.defects.iter().find(|m| !(m.x.is_finite() && m.y.is_finite())) {
+            return Err(err(Some(line), format!("defects: position ({}, {}) is not a pair of finite numbers", m.x, m.y)));
+        }
+        out.push(Labelled { frame: base.join(&l.frame), name: l.frame, classes, line, marks: l.defects });
     }
     if out.is_empty() {
         return Err(err(None, "the labels file lists no frames".into()));

@@ -6,7 +6,7 @@ use std::process::ExitCode;
 use clap::Args;
 use saccade::engine::Bundle;
 use saccade::source::DEFAULT_MAX_PIXELS;
-use saccade::train::data::Shape;
+use saccade::train::data::{Augment, Shape};
 use saccade::train::fit::FitOptions;
 use saccade::train::model::Arch;
 use saccade::train::{train, TrainOptions};
@@ -23,60 +23,89 @@ pub struct TrainArgs {
     /// Bundle folder to write.
     #[arg(long)]
     pub out: PathBuf,
+    /// Bundle name written into bundle.toml.
     #[arg(long, default_value = "trained")]
     pub name: String,
     /// Class names in output order [default: every class the labels name, sorted].
     #[arg(long, value_delimiter = ',')]
     pub classes: Vec<String>,
-    #[arg(long, default_value_t = 30)]
+    /// Epochs of end-to-end training (all three networks).
+    #[arg(long, default_value_t = 40)]
     pub epochs: usize,
-    /// Epochs with the attention held at its initial local-contrast form, training only the
-    /// feature network and head (cheap), before end-to-end training.
+    /// Epochs before end-to-end training with the attention held at its initial
+    /// local-contrast form, training only the feature network and head.
     #[arg(long, default_value_t = 20)]
     pub warmup_epochs: usize,
-    #[arg(long, default_value_t = 4)]
+    /// Frames per step.
+    #[arg(long, default_value_t = 8)]
     pub batch: usize,
-    /// Cells drawn per frame and step.
-    #[arg(long, default_value_t = 32)]
-    pub patches: usize,
+    /// Cells of highest attention examined per frame and step.
+    #[arg(long, default_value_t = 24)]
+    pub top: usize,
+    /// Further cells drawn per frame and step from the remaining attention.
+    #[arg(long, default_value_t = 8)]
+    pub tail: usize,
+    /// AdamW step size at the start of each stage (cosine decay to a twentieth).
     #[arg(long, default_value_t = 2e-3)]
     pub learning_rate: f64,
+    /// Step size of the attention network relative to the others.
+    #[arg(long, default_value_t = 0.5)]
+    pub attention_rate: f64,
     /// Weight of the attention entropy bonus.
-    #[arg(long, default_value_t = 0.01)]
+    #[arg(long, default_value_t = 0.0)]
     pub entropy: f64,
-    /// Epochs without a better validation loss before stopping early.
-    #[arg(long, default_value_t = 5)]
+    /// Epochs without a better validation loss before a stage stops early.
+    #[arg(long, default_value_t = 8)]
     pub patience: usize,
-    /// Share of frames held out for validation.
-    #[arg(long, default_value_t = 0.15)]
+    /// Share of frames held out for validation, early stopping and thresholds.
+    #[arg(long, default_value_t = 0.2)]
     pub validation: f64,
+    /// Patches per held-out frame when validating (priority sampling, as the engine).
+    #[arg(long, default_value_t = 128)]
+    pub val_patches: usize,
+    /// Seed of the split, initial weights, draws and augmentation.
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
+    /// Frame pixels per thumbnail pixel.
     #[arg(long, default_value_t = 8)]
     pub thumbnail_factor: u32,
+    /// Thumbnail pixels per attention cell (a power of two).
     #[arg(long, default_value_t = 4)]
     pub cell_stride: u32,
-    /// Patch side in frame pixels (a multiple of 16).
+    /// Patch side in frame pixels (a multiple of 8).
     #[arg(long, default_value_t = 48)]
     pub patch_size: u32,
-    /// Feature network shape: compact, wide or coarse (see DEVELOPERS.md).
-    #[arg(long, default_value = "compact", value_parser = clap::builder::PossibleValuesParser::new(Arch::PRESETS))]
+    /// Network widths: standard or small (see DEVELOPERS.md).
+    #[arg(long, default_value = "standard", value_parser = clap::builder::PossibleValuesParser::new(Arch::PRESETS))]
     pub arch: String,
     /// Epochs for the thumbnail-only comparison (same loss, split and early stopping).
-    #[arg(long, default_value_t = 12)]
+    #[arg(long, default_value_t = 20)]
     pub baseline_epochs: usize,
     /// Skip the thumbnail-only comparison network.
     #[arg(long)]
     pub no_baseline: bool,
+    /// Do not show frames mirrored and turned by quarter turns.
+    #[arg(long)]
+    pub no_flips: bool,
+    /// Contrast jitter: gain drawn from [1 - G, 1 + G] per frame and step.
+    #[arg(long, default_value_t = 0.15)]
+    pub gain_jitter: f32,
+    /// Brightness jitter: offset in grey levels drawn from [-O, O] per frame and step.
+    #[arg(long, default_value_t = 15.0)]
+    pub offset_jitter: f32,
+    /// Worker threads [default: the CPU cores available].
+    #[arg(long)]
+    pub threads: Option<usize>,
 }
 
 pub fn run(a: TrainArgs) -> anyhow::Result<ExitCode> {
-    if a.patch_size == 0 || a.patch_size % 16 != 0 {
-        anyhow::bail!("--patch-size {}: expected a positive multiple of 16", a.patch_size);
+    if !(0.0..1.0).contains(&a.validation) || a.epochs == 0 || a.batch == 0 || a.top + a.tail == 0 || a.val_patches == 0 {
+        anyhow::bail!("--validation must be in [0, 1); --epochs, --batch, --val-patches and --top + --tail must be positive");
     }
-    if !(0.0..1.0).contains(&a.validation) || a.epochs == 0 || a.batch == 0 || a.patches == 0 {
-        anyhow::bail!("--validation must be in [0, 1); --epochs, --batch and --patches must be positive");
+    if !(0.0..1.0).contains(&a.gain_jitter) || !(0.0..=128.0).contains(&a.offset_jitter) {
+        anyhow::bail!("--gain-jitter must be in [0, 1) and --offset-jitter in [0, 128] grey levels");
     }
+    let threads = a.threads.unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get())).max(1);
     let o = TrainOptions {
         labels: a.labels,
         frames: a.frames,
@@ -89,10 +118,15 @@ pub fn run(a: TrainArgs) -> anyhow::Result<ExitCode> {
             epochs: a.epochs,
             warmup: a.warmup_epochs,
             batch: a.batch,
-            patches: a.patches,
+            top: a.top,
+            tail: a.tail,
             learning_rate: a.learning_rate,
+            attention_rate: a.attention_rate,
             entropy: a.entropy,
             patience: a.patience,
+            val_patches: a.val_patches,
+            augment: Augment { flips: !a.no_flips, gain: a.gain_jitter, offset: a.offset_jitter },
+            threads,
         },
         validation: a.validation,
         seed: a.seed,
@@ -100,11 +134,6 @@ pub fn run(a: TrainArgs) -> anyhow::Result<ExitCode> {
         baseline_epochs: a.baseline_epochs,
         max_pixels: DEFAULT_MAX_PIXELS,
     };
-    // One thread per model (the comparison trains beside the sampled model), unless the
-    // caller chose otherwise: candle's pool adds more synchronisation than speed here.
-    if std::env::var_os("RAYON_NUM_THREADS").is_none() {
-        std::env::set_var("RAYON_NUM_THREADS", "1");
-    }
     let t = train(&o)?;
     // The written bundle must load as the daemon would load it.
     Bundle::load(&a.out, &[1, 8])?;

@@ -51,6 +51,53 @@ pub fn predict(probs: &[Vec<f64>], thresholds: &[f64]) -> Vec<Vec<bool>> {
     probs.iter().map(|row| row.iter().zip(thresholds).map(|(p, t)| p >= t).collect()).collect()
 }
 
+/// A per-class decision threshold chosen on held-out scores.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Threshold {
+    /// The lowest score predicted positive at the best F1 (a threshold in the sense of
+    /// scikit-learn's `precision_recall_curve`: positive when `score >= at`).
+    pub at: f64,
+    /// Best F1 on the held-out scores.
+    pub f1: f64,
+    /// What to use on new frames: midway between `at` and the next lower held-out score,
+    /// so that a frame scoring like the weakest held-out positive is not on the edge.
+    pub threshold: f64,
+}
+
+/// The rule `saccade train` uses per class: among the distinct held-out scores, the
+/// threshold `score >= t` with the best F1; ties go to the highest such `t` (fewer false
+/// alarms for the same F1). `None` when no held-out frame carries the class.
+pub fn best_f1_threshold(scores: &[f64], truth: &[bool]) -> Option<Threshold> {
+    let positives = truth.iter().filter(|&&t| t).count();
+    if positives == 0 {
+        return None;
+    }
+    let mut idx: Vec<usize> = (0..scores.len()).collect();
+    idx.sort_by(|&a, &b| scores[b].total_cmp(&scores[a]));
+    let (mut tp, mut fp) = (0usize, 0usize);
+    let mut best: Option<(f64, f64, usize)> = None; // (f1, at, position of the next lower score)
+    let mut j = 0;
+    while j < idx.len() {
+        let at = scores[idx[j]];
+        // Every frame scoring exactly `at` is predicted positive together.
+        while j < idx.len() && scores[idx[j]] == at {
+            if truth[idx[j]] {
+                tp += 1;
+            } else {
+                fp += 1;
+            }
+            j += 1;
+        }
+        let f1 = 2.0 * tp as f64 / (tp + fp + positives) as f64;
+        if best.is_none_or(|(b, _, _)| f1 > b) {
+            best = Some((f1, at, j));
+        }
+    }
+    let (f1, at, next) = best.expect("at least one score");
+    let lower = idx.get(next).map_or(0.0, |&k| scores[k]);
+    Some(Threshold { at, f1, threshold: (at + lower) / 2.0 })
+}
+
 /// Equal-width bin of `p` among `bins`: bin `i` holds `(i/M, (i+1)/M]`, and `p = 0` goes
 /// to the first bin.
 fn bin_of(p: f64, bins: usize) -> usize {

@@ -1,12 +1,17 @@
-//! Training frames in memory: full-resolution pixels for patches, normalised thumbnails
-//! made exactly as the engine makes them, and frame-level targets.
+//! Training frames in memory: full-resolution pixels for patches, thumbnails made exactly
+//! as the engine makes them, frame-level targets, and the augmentations a camera's own
+//! frames can take without new labels (the eight flips and quarter turns, brightness and
+//! contrast).
 
 use std::path::Path;
 
 use image::RgbImage;
+use rand::Rng;
+use rand_chacha::ChaCha8Rng;
 
+use super::nn::Act;
 use crate::engine::bundle::Normalization;
-use crate::engine::patches::{Geometry, Normalizer};
+use crate::engine::patches::Geometry;
 use crate::engine::thumbnail::area_reduce;
 use crate::labels::{class_matrix, Labelled};
 use crate::source::decode_file;
@@ -22,19 +27,100 @@ pub struct Shape {
 pub struct Sample {
     pub name: String,
     pub image: RgbImage,
-    /// Thumbnail cropped to whole cells, normalised, folded 2×2 (space to depth:
-    /// `[H/2, W/2, 12]`, each block in `(dy, dx, c)` order) as the networks' first,
-    /// 2×2 patch-embedding layer reads it.
-    pub thumb: Vec<f32>,
+    /// Thumbnail cut to whole cells, `[th, tw, 3]` bytes, row-major.
+    pub thumb: Vec<u8>,
     pub target: Vec<f32>,
 }
 
 pub struct Dataset {
     pub samples: Vec<Sample>,
     pub geometry: Geometry,
-    /// Cropped thumbnail height and width (before folding).
+    /// Thumbnail height and width cut to whole cells.
     pub thumb_hw: (usize, usize),
-    pub normalizer: Normalizer,
+    pub norm: Normalization,
+}
+
+/// How one frame is shown in one step: one of the eight symmetries of the square grid,
+/// and a brightness/contrast change folded into the byte → input lookup table.
+#[derive(Clone)]
+pub struct View {
+    /// Bit 0 mirrors x, bit 1 mirrors y, bit 2 transposes (applied first).
+    pub dihedral: u8,
+    lut: [[f32; 256]; 3],
+}
+
+/// Augmentation ranges; [`Augment::NONE`] shows frames as they are.
+#[derive(Clone, Copy, Debug)]
+pub struct Augment {
+    pub flips: bool,
+    /// Contrast gain drawn from `[1 - g, 1 + g]`.
+    pub gain: f32,
+    /// Brightness offset in grey levels drawn from `[-o, o]`.
+    pub offset: f32,
+}
+
+impl Augment {
+    pub const NONE: Augment = Augment { flips: false, gain: 0.0, offset: 0.0 };
+}
+
+impl View {
+    pub fn plain(norm: &Normalization) -> Self {
+        Self::new(norm, 0, 1.0, 0.0)
+    }
+
+    pub fn draw(norm: &Normalization, a: &Augment, rng: &mut ChaCha8Rng) -> Self {
+        let dihedral = if a.flips { rng.random_range(0..8u8) } else { 0 };
+        let gain = if a.gain > 0.0 { rng.random_range(1.0 - a.gain..1.0 + a.gain) } else { 1.0 };
+        let offset = if a.offset > 0.0 { rng.random_range(-a.offset..a.offset) } else { 0.0 };
+        Self::new(norm, dihedral, gain, offset)
+    }
+
+    fn new(norm: &Normalization, dihedral: u8, gain: f32, offset: f32) -> Self {
+        let mut lut = [[0f32; 256]; 3];
+        for (c, table) in lut.iter_mut().enumerate() {
+            for (v, out) in table.iter_mut().enumerate() {
+                let level = (gain * v as f32 + offset).clamp(0.0, 255.0);
+                *out = (level / 255.0 - norm.mean[c]) / norm.std[c];
+            }
+        }
+        Self { dihedral, lut }
+    }
+
+    fn transposed(&self) -> bool {
+        self.dihedral & 4 != 0
+    }
+
+    /// Size of an `h × w` grid after this view's symmetry.
+    pub fn shape(&self, h: usize, w: usize) -> (usize, usize) {
+        if self.transposed() {
+            (w, h)
+        } else {
+            (h, w)
+        }
+    }
+
+    /// The source position of `(y, x)` in the viewed `h × w` grid (sizes after the view).
+    pub fn source(&self, y: usize, x: usize, h: usize, w: usize) -> (usize, usize) {
+        let y = if self.dihedral & 2 != 0 { h - 1 - y } else { y };
+        let x = if self.dihedral & 1 != 0 { w - 1 - x } else { x };
+        if self.transposed() {
+            (x, y)
+        } else {
+            (y, x)
+        }
+    }
+
+    /// Writes `src` (`[h, w, 3]` in source orientation, already normalised) into `dst` in
+    /// this view's orientation.
+    fn orient(&self, src: &[f32], h: usize, w: usize, dst: &mut [f32]) {
+        let (vh, vw) = self.shape(h, w);
+        for y in 0..vh {
+            for x in 0..vw {
+                let (sy, sx) = self.source(y, x, vh, vw);
+                dst[(y * vw + x) * 3..][..3].copy_from_slice(&src[(sy * w + sx) * 3..][..3]);
+            }
+        }
+    }
 }
 
 impl Dataset {
@@ -48,12 +134,10 @@ impl Dataset {
         max_pixels: u64,
     ) -> anyhow::Result<Self> {
         let targets = class_matrix(items, classes, labels)?;
-        let normalizer = Normalizer::new(norm);
         let workers = std::thread::available_parallelism().map_or(1, |n| n.get());
-        let decoded: Vec<anyhow::Result<(RgbImage, Vec<f32>)>> = std::thread::scope(|s| {
+        let decoded: Vec<anyhow::Result<RgbImage>> = std::thread::scope(|s| {
             let handles: Vec<_> = (0..workers)
                 .map(|k| {
-                    let normalizer = &normalizer;
                     s.spawn(move || {
                         items
                             .iter()
@@ -63,10 +147,9 @@ impl Dataset {
                             .map(|(i, it)| {
                                 let frame = decode_file(&it.frame, i as u64, max_pixels)
                                     .map_err(|e| anyhow::anyhow!("{}:{}: {e}", labels.display(), it.line))?;
-                                let thumb = thumbnail(&frame.image, shape, normalizer);
-                                Ok((i, (frame.image, thumb)))
+                                Ok((i, frame.image))
                             })
-                            .collect::<Vec<anyhow::Result<(usize, (RgbImage, Vec<f32>))>>>()
+                            .collect::<Vec<anyhow::Result<(usize, RgbImage)>>>()
                     })
                 })
                 .collect();
@@ -74,32 +157,24 @@ impl Dataset {
             all.sort_by_key(|r| r.as_ref().map_or(0, |(i, _)| *i));
             all.into_iter().map(|r| r.map(|(_, v)| v)).collect()
         });
-        let mut samples = Vec::with_capacity(items.len());
-        for ((it, target), d) in items.iter().zip(targets).zip(decoded) {
-            let (image, thumb) = d?;
-            if let Some(first) = samples.first().map(|s: &Sample| (s.image.width(), s.image.height(), &s.name)) {
-                if (image.width(), image.height()) != (first.0, first.1) {
+        let mut images = Vec::with_capacity(items.len());
+        for (it, d) in items.iter().zip(decoded) {
+            let image = d?;
+            if let Some((w, h, first)) = images.first().map(|(im, name): &(RgbImage, &str)| (im.width(), im.height(), *name)) {
+                if (image.width(), image.height()) != (w, h) {
                     anyhow::bail!(
-                        "{}:{}: {} is {}×{}, but {} is {}×{}: train on frames of one size (the camera's)",
+                        "{}:{}: {} is {}×{}, but {first} is {w}×{h}: train on frames of one size (the camera's)",
                         labels.display(),
                         it.line,
                         it.name,
                         image.width(),
                         image.height(),
-                        first.2,
-                        first.0,
-                        first.1
                     );
                 }
             }
-            samples.push(Sample {
-                name: it.name.clone(),
-                image,
-                thumb,
-                target: target.iter().map(|&b| b as u8 as f32).collect(),
-            });
+            images.push((image, it.name.as_str()));
         }
-        let (w, h) = (samples[0].image.width(), samples[0].image.height());
+        let (w, h) = (images[0].0.width(), images[0].0.height());
         let (rows, cols) = cells(w, h, shape);
         if rows == 0 || cols == 0 {
             anyhow::bail!(
@@ -109,62 +184,116 @@ impl Dataset {
                 shape.stride
             );
         }
-        let geometry = Geometry {
-            frame_w: w,
-            frame_h: h,
-            factor: shape.factor,
-            stride: shape.stride,
-            patch: shape.patch,
-            rows,
-            cols,
-        };
         let s = shape.stride as usize;
-        Ok(Self { samples, geometry, thumb_hw: (rows * s, cols * s), normalizer })
+        let (th, tw) = (rows * s, cols * s);
+        let samples = images
+            .into_iter()
+            .zip(items)
+            .zip(targets)
+            .map(|(((image, _), it), target)| {
+                let t = area_reduce(&image, shape.factor);
+                let full_w = t.width() as usize;
+                let mut thumb = Vec::with_capacity(th * tw * 3);
+                for y in 0..th {
+                    thumb.extend_from_slice(&t.as_raw()[y * full_w * 3..][..tw * 3]);
+                }
+                Sample { name: it.name.clone(), image, thumb, target: target.iter().map(|&b| b as u8 as f32).collect() }
+            })
+            .collect();
+        let geometry = Geometry { frame_w: w, frame_h: h, factor: shape.factor, stride: shape.stride, patch: shape.patch, rows, cols };
+        Ok(Self { samples, geometry, thumb_hw: (th, tw), norm: norm.clone() })
     }
 
-    /// Patch of `cell` in sample `i`, normalised and folded `k × k` (space to depth:
-    /// `[P/k, P/k, k·k·3]`, blocks in `(dy, dx, c)` order), appended to `out`.
-    pub fn patch(&self, i: usize, cell: usize, k: usize, planar: &mut Vec<f32>, out: &mut Vec<f32>) {
+    /// The thumbnail of sample `i` as the attention network's input `[1, h, w, 3]`, in the
+    /// view's orientation.
+    pub fn thumbnail(&self, i: usize, view: &View) -> Act {
+        let (h, w) = self.thumb_hw;
+        let src: Vec<f32> =
+            self.samples[i].thumb.chunks_exact(3).flat_map(|px| (0..3).map(move |c| view.lut[c][px[c] as usize])).collect();
+        let (vh, vw) = view.shape(h, w);
+        let mut dst = vec![0f32; src.len()];
+        view.orient(&src, h, w, &mut dst);
+        Act::new(1, vh, vw, 3, dst)
+    }
+
+    /// The cell of the unviewed grid that cell `cell` of the viewed grid shows.
+    pub fn source_cell(&self, view: &View, cell: usize) -> usize {
+        let g = &self.geometry;
+        let (vh, vw) = view.shape(g.rows, g.cols);
+        let (r, c) = view.source(cell / vw, cell % vw, vh, vw);
+        r * g.cols + c
+    }
+
+    /// Appends the patch of viewed cell `cell` of sample `i` (`[P, P, 3]`, normalised,
+    /// in the view's orientation; pixels outside the frame are 0) to `out`.
+    pub fn patch(&self, i: usize, view: &View, cell: usize, scratch: &mut Vec<f32>, out: &mut Vec<f32>) {
         let p = self.geometry.patch as usize;
-        planar.resize(3 * p * p, 0.0);
-        self.normalizer.write_patch(&self.samples[i].image, self.geometry.patch_origin(cell), p, planar);
-        let start = out.len();
-        out.resize(start + 3 * p * p, 0.0);
-        let dst = &mut out[start..];
-        let q = p / k;
-        for y in 0..p {
-            for x in 0..p {
-                let block = ((y / k) * q + x / k) * k * k * 3 + ((y % k) * k + x % k) * 3;
+        let (ox, oy) = self.geometry.patch_origin(self.source_cell(view, cell));
+        let image = &self.samples[i].image;
+        let (w, h) = (image.width() as i64, image.height() as i64);
+        scratch.clear();
+        scratch.resize(p * p * 3, 0.0);
+        let raw = image.as_raw();
+        for py in 0..p {
+            let fy = oy + py as i64;
+            if fy < 0 || fy >= h {
+                continue;
+            }
+            for px in 0..p {
+                let fx = ox + px as i64;
+                if fx < 0 || fx >= w {
+                    continue;
+                }
+                let at = ((fy * w + fx) * 3) as usize;
                 for c in 0..3 {
-                    dst[block + c] = planar[c * p * p + y * p + x];
+                    scratch[(py * p + px) * 3 + c] = view.lut[c][raw[at + c] as usize];
                 }
             }
         }
+        let start = out.len();
+        out.resize(start + p * p * 3, 0.0);
+        view.orient(scratch, p, p, &mut out[start..]);
     }
 }
 
 /// Whole cells of a frame: the engine's grid rounded down.
-fn cells(w: u32, h: u32, s: Shape) -> (usize, usize) {
+pub fn cells(w: u32, h: u32, s: Shape) -> (usize, usize) {
     let (tw, th) = (w.div_ceil(s.factor) as usize, h.div_ceil(s.factor) as usize);
     (th / s.stride as usize, tw / s.stride as usize)
 }
 
-fn thumbnail(image: &RgbImage, s: Shape, n: &Normalizer) -> Vec<f32> {
-    let t = area_reduce(image, s.factor);
-    let (rows, cols) = cells(image.width(), image.height(), s);
-    let (h, w) = (rows * s.stride as usize, cols * s.stride as usize);
-    let tw = t.width() as usize;
-    let mut planar = vec![0f32; 3 * (t.width() * t.height()) as usize];
-    n.write_planar(&t, &mut planar);
-    let plane = planar.len() / 3;
-    let mut out = vec![0f32; h * w * 3];
-    for y in 0..h {
-        for x in 0..w {
-            let block = ((y / 2) * (w / 2) + x / 2) * 12 + ((y % 2) * 2 + x % 2) * 3;
-            for c in 0..3 {
-                out[block + c] = planar[c * plane + y * tw + x];
-            }
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn norm() -> Normalization {
+        Normalization { mean: [0.0; 3], std: [1.0 / 255.0; 3] }
+    }
+
+    /// Every view is a bijection of the grid, and the eight views are the eight distinct
+    /// symmetries of a square.
+    #[test]
+    fn views_are_the_eight_symmetries() {
+        let (h, w) = (3, 5);
+        let mut seen = std::collections::HashSet::new();
+        for d in 0..8u8 {
+            let v = View::new(&norm(), d, 1.0, 0.0);
+            let (vh, vw) = v.shape(h, w);
+            let map: Vec<(usize, usize)> = (0..vh * vw).map(|j| v.source(j / vw, j % vw, vh, vw)).collect();
+            let mut sorted = map.clone();
+            sorted.sort();
+            sorted.dedup();
+            assert_eq!(sorted.len(), h * w, "view {d} is not a bijection");
+            assert!(seen.insert(map), "view {d} repeats another");
         }
     }
-    out
+
+    #[test]
+    fn the_lookup_folds_in_brightness_and_contrast() {
+        let v = View::new(&norm(), 0, 1.5, -10.0);
+        // Identity normalisation: the table gives the changed grey level, clamped.
+        for (got, want) in [(v.lut[0][100], 140.0), (v.lut[1][0], 0.0), (v.lut[2][255], 255.0)] {
+            assert!((got - want).abs() < 1e-3, "{got} vs {want}");
+        }
+    }
 }

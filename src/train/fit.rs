@@ -1,41 +1,58 @@
-//! The training loop: attention sampling trained end to end, and the thumbnail-only
-//! comparison trained with the same loss, split and stopping rule.
+//! The training loops: the attention-sampling model end to end, and the thumbnail-only
+//! comparison with the same loss, split and stopping rule.
 //!
-//! Gradient through the sampled patches (Katharopoulos and Fleuret, "Processing Megapixel
-//! Images with Deep Attention-Sampling Models", ICML 2019): draw `k` cells per frame
-//! i.i.d. from the attention distribution `a`, and estimate
-//! `Psi_hat = (1/k) Σ_j f(x_j) · a_j / stop_gradient(a_j)`. Its value is the plain Monte
-//! Carlo mean (an unbiased estimate of `Σ_i a_i f_i`), and its gradient with respect to
-//! the attention scores is an unbiased estimate of the gradient of `Σ_i a_i f_i`, so the
-//! attention network learns where to look from frame-level labels alone. An entropy bonus
-//! `−β H(a) / ln N` keeps attention from collapsing onto one cell early on.
+//! The model's quantity is `Psi = Σ_i a_i f_i` over every cell (attention sampling,
+//! Katharopoulos and Fleuret, "Processing Megapixel Images with Deep Attention-Sampling
+//! Models", ICML 2019). Each step estimates it, per frame, without bias and with low
+//! variance by splitting the cells in two: the `top` cells of highest attention, summed
+//! exactly, and the rest, estimated from `tail` draws in proportion to attention,
+//!
+//! `Psi_hat = Σ_{i ∈ top} a_i f_i + (R / m) Σ_{j=1..m} f_{c_j} · a_{c_j} / sg(a_{c_j})`,
+//!
+//! with `R` the attention mass outside the top cells and `sg` a stop-gradient. Its gradient
+//! with respect to the attention is exact for the top cells and the usual unbiased
+//! score-function estimate for the rest. Taking the top cells with certainty mirrors what
+//! priority sampling does at inference, where cells of high attention are always examined,
+//! and it shows the feature network every mark attention already points at, in every
+//! step, instead of a few lucky draws. Frames are independent given the weights, so each
+//! of the `threads` workers takes its share of a step's frames with its own buffers, and
+//! their gradients are summed.
 
 use std::time::Instant;
 
-use candle_core::{Device, Result, Tensor, Var};
-use candle_nn::{AdamW, Optimizer, ParamsAdamW};
 use indicatif::{MultiProgress, ProgressBar, ProgressStyle};
 use rand::seq::SliceRandom;
+use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
-use super::data::Dataset;
-use super::layers::{bce_with_logits, draw};
-use super::model::{log_attention, AttentionNet, Baseline, FeatureNet, Head};
+use super::data::{Augment, Dataset, View};
+use super::nn::{bce, sigmoid, Act, AdamW, Grads, Net, Tape};
 
 #[derive(Clone, Debug)]
 pub struct FitOptions {
+    /// Epochs of end-to-end training.
     pub epochs: usize,
-    pub batch: usize,
-    /// Cells drawn per frame and step.
-    pub patches: usize,
-    /// Epochs of the warm-up stage ([`Frozen`]) before end-to-end training.
+    /// Epochs before it with the attention held at its initial form, training only the
+    /// feature network and head.
     pub warmup: usize,
+    /// Frames per step.
+    pub batch: usize,
+    /// Cells of highest attention summed exactly per frame and step.
+    pub top: usize,
+    /// Draws from the remaining attention per frame and step.
+    pub tail: usize,
     pub learning_rate: f64,
-    /// Weight β of the entropy bonus.
+    /// Learning rate of the attention network relative to the others.
+    pub attention_rate: f64,
+    /// Weight β of the attention entropy bonus `−β H(a) / ln N`.
     pub entropy: f64,
-    /// Epochs without a better validation loss before stopping.
+    /// Epochs without a better validation loss before a stage stops.
     pub patience: usize,
+    /// Patches per validation frame (priority sampling, fixed draws).
+    pub val_patches: usize,
+    pub augment: Augment,
+    pub threads: usize,
 }
 
 /// One line of the per-epoch training log.
@@ -49,171 +66,322 @@ pub struct EpochLog {
     pub seconds: f64,
 }
 
+/// The three networks of a bundle.
+#[derive(Clone)]
 pub struct Sampled {
-    pub attention: AttentionNet,
-    pub features: FeatureNet,
-    pub head: Head,
+    pub attention: Net,
+    pub features: Net,
+    pub head: Net,
 }
 
-/// The sampled model with its attention held fixed at precomputed distributions (one per
-/// frame): the warm-up stage, where only the feature network and head learn. Each step
-/// then costs a few patches instead of an attention pass over the whole thumbnail, so
-/// the classifier gets many cheap updates before end-to-end training begins.
-pub struct Frozen<'a> {
-    pub model: &'a Sampled,
-    /// Attention distribution of every frame of the dataset, by sample index.
-    pub attention: Vec<Vec<f32>>,
+/// Softmax of `s` in f64.
+pub fn softmax(s: &[f32]) -> Vec<f64> {
+    let max = s.iter().fold(f64::NEG_INFINITY, |m, &z| m.max(z as f64));
+    let mut a: Vec<f64> = s.iter().map(|&z| (z as f64 - max).exp()).collect();
+    let total: f64 = a.iter().sum();
+    a.iter_mut().for_each(|x| *x /= total);
+    a
 }
 
-impl<'a> Frozen<'a> {
-    pub fn new(model: &'a Sampled, data: &Dataset, batch: usize) -> Result<Self> {
-        let all: Vec<usize> = (0..data.samples.len()).collect();
-        let mut attention = Vec::with_capacity(all.len());
-        for chunk in all.chunks(batch) {
-            let log_a = log_attention(&model.attention.forward_folded(&thumbs(data, chunk)?)?)?;
-            attention.extend(log_a.exp()?.to_vec2::<f32>()?);
+/// Cells to examine and their weights in the estimate of `Psi`.
+struct Selection {
+    cells: Vec<usize>,
+    weights: Vec<f64>,
+    /// `∂ weight / ∂ a` of each selected cell (1 for a top cell, `weight / a` for a draw).
+    slopes: Vec<f64>,
+}
+
+/// The top cells and `tail` draws from the rest (see the module notes).
+fn select(a: &[f64], top: usize, tail: usize, rng: &mut ChaCha8Rng) -> Selection {
+    let top = top.min(a.len());
+    let mut order: Vec<usize> = (0..a.len()).collect();
+    if top < a.len() {
+        order.select_nth_unstable_by(top, |&x, &y| a[y].total_cmp(&a[x]));
+    }
+    let mut cells: Vec<usize> = order[..top].to_vec();
+    let mut weights: Vec<f64> = cells.iter().map(|&c| a[c]).collect();
+    let mut slopes = vec![1.0; top];
+    let rest = &order[top..];
+    let mass: f64 = rest.iter().map(|&c| a[c]).sum();
+    if tail > 0 && mass > 0.0 {
+        let mut cdf = Vec::with_capacity(rest.len());
+        let mut acc = 0.0;
+        for &c in rest {
+            acc += a[c];
+            cdf.push(acc);
         }
-        Ok(Self { model, attention })
-    }
-}
-
-/// Draws `k` cells per frame from `rows` and runs the feature network on their patches:
-/// features `[B, k, D]` and the cells drawn.
-fn sampled_features(
-    m: &Sampled,
-    data: &Dataset,
-    idx: &[usize],
-    rows: &[&[f32]],
-    k: usize,
-    rng: &mut ChaCha8Rng,
-) -> Result<(Tensor, Vec<u32>)> {
-    let p = data.geometry.patch as usize;
-    let (b, e) = (idx.len(), m.features.c1.k);
-    let (mut picks, mut planar, mut pixels) =
-        (Vec::with_capacity(b * k), Vec::new(), Vec::with_capacity(b * k * p * p * 3));
-    for (row, &i) in rows.iter().zip(idx) {
-        for _ in 0..k {
-            let cell = draw(row, rng);
-            picks.push(cell as u32);
-            data.patch(i, cell, e, &mut planar, &mut pixels);
+        let mut counts: Vec<(usize, usize)> = Vec::new();
+        for _ in 0..tail {
+            let u = rng.random::<f64>() * acc;
+            let j = cdf.partition_point(|&v| v <= u).min(rest.len() - 1);
+            match counts.iter_mut().find(|(c, _)| *c == rest[j]) {
+                Some((_, n)) => *n += 1,
+                None => counts.push((rest[j], 1)),
+            }
+        }
+        for (c, n) in counts {
+            let w = n as f64 * mass / tail as f64;
+            cells.push(c);
+            weights.push(w);
+            slopes.push(w / a[c].max(f64::MIN_POSITIVE));
         }
     }
-    let f = m.features.forward_folded(&Tensor::from_vec(pixels, (b * k, p / e, p / e, e * e * 3), &Device::Cpu)?)?;
-    Ok((f.reshape((b, k, m.features.dim))?, picks))
+    Selection { cells, weights, slopes }
 }
 
-impl Model for Frozen<'_> {
-    const NAME: &'static str = "warm-up";
+/// Priority sampling (Duffield, Lund and Thorup, J. ACM 54(6), 2007) of `k` cells with
+/// the uniforms from `rng`: the engine's default estimator, here for validation.
+fn priority(a: &[f64], k: usize, rng: &mut ChaCha8Rng) -> Selection {
+    let mut q: Vec<(usize, f64)> = a.iter().enumerate().filter(|(_, &x)| x > 0.0).map(|(i, &x)| (i, x / (1.0 - rng.random::<f64>()))).collect();
+    q.sort_by(|x, y| y.1.total_cmp(&x.1).then(x.0.cmp(&y.0)));
+    let k = k.min(q.len());
+    let tau = q.get(k).map_or(0.0, |x| x.1);
+    let cells: Vec<usize> = q[..k].iter().map(|x| x.0).collect();
+    let weights = cells.iter().map(|&c| a[c].max(tau)).collect();
+    Selection { slopes: vec![0.0; k], cells, weights }
+}
 
-    fn logits(
-        &self,
-        data: &Dataset,
-        idx: &[usize],
-        rng: &mut ChaCha8Rng,
-        o: &FitOptions,
-    ) -> Result<(Tensor, Option<Tensor>)> {
-        let rows: Vec<&[f32]> = idx.iter().map(|&i| self.attention[i].as_slice()).collect();
-        let (f, _) = sampled_features(self.model, data, idx, &rows, o.patches, rng)?;
-        Ok((self.model.head.forward(&f.mean(1)?)?, None))
+/// Buffers of one worker thread.
+struct Worker {
+    at: Tape,
+    ft: Tape,
+    ht: Tape,
+    ga: Grads,
+    gf: Grads,
+    gh: Grads,
+    scratch: Vec<f32>,
+    patches: Vec<f32>,
+}
+
+impl Worker {
+    fn new(m: &Sampled) -> Self {
+        Self {
+            at: Tape::default(),
+            ft: Tape::default(),
+            ht: Tape::default(),
+            ga: m.attention.grads(),
+            gf: m.features.grads(),
+            gh: m.head.grads(),
+            scratch: Vec::new(),
+            patches: Vec::new(),
+        }
     }
 }
 
-/// The whole model as one function of a batch of frames, for training and validation.
-pub trait Model {
-    const NAME: &'static str;
-    /// Logits `[B, C]` for the frames `idx`, plus a term added to the loss.
-    fn logits(
-        &self,
-        data: &Dataset,
-        idx: &[usize],
-        rng: &mut ChaCha8Rng,
-        o: &FitOptions,
-    ) -> Result<(Tensor, Option<Tensor>)>;
+/// What one frame's forward pass gives: logits and the pieces its backward pass needs.
+struct FramePass {
+    logits: Vec<f32>,
+    a: Vec<f64>,
+    sel: Selection,
+    /// Features of the selected cells, `[cells, D]`.
+    f: Vec<f32>,
 }
 
-fn thumbs(data: &Dataset, idx: &[usize]) -> Result<Tensor> {
-    let (h, w) = data.thumb_hw;
-    let mut v = Vec::with_capacity(idx.len() * h * w * 3);
-    for &i in idx {
-        v.extend_from_slice(&data.samples[i].thumb);
+impl Sampled {
+    fn frame_forward(&self, data: &Dataset, i: usize, view: &View, pick: impl FnOnce(&[f64]) -> Selection, w: &mut Worker) -> FramePass {
+        let scores = self.attention.forward(data.thumbnail(i, view), &mut w.at);
+        let a = softmax(&scores.data);
+        let sel = pick(&a);
+        let p = data.geometry.patch as usize;
+        w.patches.clear();
+        for &c in &sel.cells {
+            data.patch(i, view, c, &mut w.scratch, &mut w.patches);
+        }
+        let x = Act::new(sel.cells.len(), p, p, 3, std::mem::take(&mut w.patches));
+        let f = self.features.forward(x, &mut w.ft).data.clone();
+        let d = f.len() / sel.cells.len();
+        let mut psi = vec![0f32; d];
+        for (row, &wt) in f.chunks_exact(d).zip(&sel.weights) {
+            for (p, v) in psi.iter_mut().zip(row) {
+                *p += (wt * *v as f64) as f32;
+            }
+        }
+        let logits = self.head.forward(Act::new(1, 1, 1, d, psi), &mut w.ht).data.clone();
+        FramePass { logits, a, sel, f }
     }
-    Tensor::from_vec(v, (idx.len(), h / 2, w / 2, 12), &Device::Cpu)
-}
 
-fn targets(data: &Dataset, idx: &[usize]) -> Result<Tensor> {
-    let c = data.samples[0].target.len();
-    let v: Vec<f32> = idx.iter().flat_map(|&i| data.samples[i].target.iter().copied()).collect();
-    Tensor::from_vec(v, (idx.len(), c), &Device::Cpu)
-}
-
-impl Model for Sampled {
-    const NAME: &'static str = "sampled";
-
-    fn logits(
-        &self,
-        data: &Dataset,
-        idx: &[usize],
-        rng: &mut ChaCha8Rng,
-        o: &FitOptions,
-    ) -> Result<(Tensor, Option<Tensor>)> {
-        let (b, k) = (idx.len(), o.patches);
-        let log_a = log_attention(&self.attention.forward_folded(&thumbs(data, idx)?)?)?;
-        let a = log_a.exp()?;
-        let host = a.to_vec2::<f32>()?;
-        let rows: Vec<&[f32]> = host.iter().map(Vec::as_slice).collect();
-        let (f, picks) = sampled_features(self, data, idx, &rows, k, rng)?;
-        let chosen = a.gather(&Tensor::from_vec(picks, (b, k), &Device::Cpu)?, 1)?;
-        // Value 1, gradient ∇a_j / a_j: the score-function term that trains the attention.
-        let ratio = chosen.div(&chosen.detach())?;
-        let psi = f.broadcast_mul(&ratio.unsqueeze(2)?)?.mean(1)?;
-        let n = a.dim(1)? as f64;
-        let entropy = (a * &log_a)?.sum(1)?.neg()?.mean_all()?;
-        let bonus = entropy.affine(-o.entropy / n.ln(), 0.0)?;
-        Ok((self.head.forward(&psi)?, Some(bonus)))
+    /// Backward pass of one frame from `dz` (gradient at its logits).
+    fn frame_backward(&self, pass: &FramePass, dz: &[f32], train_attention: bool, entropy: f64, w: &mut Worker) {
+        let dpsi = self.head.backward(&mut w.ht, dz, &mut w.gh, true).expect("input gradient").data.clone();
+        let d = dpsi.len();
+        let mut df = vec![0f32; pass.f.len()];
+        let mut da = Vec::with_capacity(pass.sel.cells.len());
+        for ((row, drow), (&wt, &slope)) in pass.f.chunks_exact(d).zip(df.chunks_exact_mut(d)).zip(pass.sel.weights.iter().zip(&pass.sel.slopes)) {
+            let mut dot = 0.0f64;
+            for ((g, &v), &dp) in drow.iter_mut().zip(row).zip(&dpsi) {
+                *g = (wt as f32) * dp;
+                dot += (v * dp) as f64;
+            }
+            da.push(slope * dot);
+        }
+        self.features.backward(&mut w.ft, &df, &mut w.gf, false);
+        if !train_attention {
+            return;
+        }
+        // Softmax: ∂L/∂s_i = a_i (∂L/∂a_i − Σ_j a_j ∂L/∂a_j).
+        let a = &pass.a;
+        let mean: f64 = pass.sel.cells.iter().zip(&da).map(|(&c, g)| a[c] * g).sum();
+        let mut ds: Vec<f64> = a.iter().map(|&x| -x * mean).collect();
+        for (&c, g) in pass.sel.cells.iter().zip(&da) {
+            ds[c] += a[c] * g;
+        }
+        if entropy > 0.0 {
+            // Bonus −β H / ln N: ∂/∂s_i = β / ln N · a_i (ln a_i + H).
+            let h: f64 = -a.iter().filter(|&&x| x > 0.0).map(|&x| x * x.ln()).sum::<f64>();
+            let k = entropy / (a.len() as f64).ln();
+            for (g, &x) in ds.iter_mut().zip(a) {
+                if x > 0.0 {
+                    *g += k * x * (x.ln() + h);
+                }
+            }
+        }
+        let ds: Vec<f32> = ds.iter().map(|&v| v as f32).collect();
+        self.attention.backward(&mut w.at, &ds, &mut w.ga, false);
     }
 }
 
-impl Model for Baseline {
-    const NAME: &'static str = "baseline";
+/// Splits `items` over `threads` scoped workers, each with its own state from `init`;
+/// returns the states and results in order.
+fn parallel<T: Sync, S: Send, R: Send>(
+    items: &[T],
+    threads: usize,
+    init: impl Fn(usize) -> S + Sync,
+    work: impl Fn(&mut S, &T) -> R + Sync,
+) -> Vec<(S, Vec<R>)> {
+    let per = items.len().div_ceil(threads.max(1)).max(1);
+    std::thread::scope(|s| {
+        let handles: Vec<_> = items
+            .chunks(per)
+            .enumerate()
+            .map(|(t, chunk)| {
+                let (init, work) = (&init, &work);
+                s.spawn(move || {
+                    let mut state = init(t);
+                    let out = chunk.iter().map(|it| work(&mut state, it)).collect();
+                    (state, out)
+                })
+            })
+            .collect();
+        handles.into_iter().map(|h| h.join().expect("training worker panicked")).collect()
+    })
+}
 
-    fn logits(
-        &self,
-        data: &Dataset,
-        idx: &[usize],
-        _rng: &mut ChaCha8Rng,
-        _o: &FitOptions,
-    ) -> Result<(Tensor, Option<Tensor>)> {
-        Ok((self.forward_folded(&thumbs(data, idx)?)?, None))
+/// Probabilities and mean loss of the sampled model on `frames` with the engine's
+/// estimator: priority sampling of `k` cells, with draws fixed by `seed` and the frame.
+pub fn validate(m: &Sampled, data: &Dataset, frames: &[usize], k: usize, seed: u64, threads: usize) -> (Vec<Vec<f64>>, f64) {
+    let out = parallel(
+        frames,
+        threads,
+        |_| Worker::new(m),
+        |w, &i| {
+            let mut rng = ChaCha8Rng::seed_from_u64(seed ^ (i as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15));
+            let pass = m.frame_forward(data, i, &View::plain(&data.norm), |a| priority(a, k, &mut rng), w);
+            let mut dz = vec![0f32; pass.logits.len()];
+            let loss = bce(&pass.logits, &data.samples[i].target, 1.0, &mut dz);
+            (pass.logits.iter().map(|&z| sigmoid(z) as f64).collect::<Vec<f64>>(), loss)
+        },
+    );
+    let results: Vec<(Vec<f64>, f64)> = out.into_iter().flat_map(|(_, r)| r).collect();
+    let loss = results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
+    (results.into_iter().map(|r| r.0).collect(), loss)
+}
+
+/// Probabilities and mean loss of the thumbnail-only network on `frames`.
+pub fn validate_baseline(b: &Net, data: &Dataset, frames: &[usize], threads: usize) -> (Vec<Vec<f64>>, f64) {
+    let out = parallel(
+        frames,
+        threads,
+        |_| (),
+        |_, &i| {
+            let z = b.infer(data.thumbnail(i, &View::plain(&data.norm))).data;
+            let mut dz = vec![0f32; z.len()];
+            let loss = bce(&z, &data.samples[i].target, 1.0, &mut dz);
+            (z.iter().map(|&v| sigmoid(v) as f64).collect::<Vec<f64>>(), loss)
+        },
+    );
+    let results: Vec<(Vec<f64>, f64)> = out.into_iter().flat_map(|(_, r)| r).collect();
+    let loss = results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
+    (results.into_iter().map(|r| r.0).collect(), loss)
+}
+
+/// Macro F1 at probability 0.5.
+pub fn macro_f1(probs: &[Vec<f64>], data: &Dataset, frames: &[usize]) -> f64 {
+    let pred: Vec<Vec<bool>> = probs.iter().map(|p| p.iter().map(|&v| v >= 0.5).collect()).collect();
+    let truth: Vec<Vec<bool>> = frames.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
+    crate::eval::metrics::f1(&truth, &pred).macro_f1
+}
+
+/// What a stage trains.
+#[derive(Clone, Copy, PartialEq, Eq)]
+pub enum Stage {
+    /// Feature network and head, attention held.
+    Warmup,
+    /// All three networks.
+    EndToEnd,
+}
+
+impl Stage {
+    fn name(self) -> &'static str {
+        match self {
+            Stage::Warmup => "warm-up",
+            Stage::EndToEnd => "sampled",
+        }
     }
 }
 
-/// Mean loss and macro F1 of `m` on the frames `val`.
-pub fn evaluate<M: Model>(
-    m: &M,
-    data: &Dataset,
-    val: &[usize],
-    rng: &mut ChaCha8Rng,
-    o: &FitOptions,
-) -> Result<(f64, f64)> {
-    let (mut loss, mut all) = (0.0, Vec::new());
-    for chunk in val.chunks(o.batch) {
-        let (z, _) = m.logits(data, chunk, rng, o)?;
-        loss += bce_with_logits(&z, &targets(data, chunk)?)?.to_scalar::<f32>()? as f64 * chunk.len() as f64;
-        all.extend(z.to_vec2::<f32>()?);
-    }
-    // Predicted at probability 0.5, i.e. logit 0.
-    let pred: Vec<Vec<bool>> = all.iter().map(|z| z.iter().map(|&v| v > 0.0).collect()).collect();
-    let truth: Vec<Vec<bool>> =
-        val.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
-    Ok((loss / val.len() as f64, crate::eval::metrics::f1(&truth, &pred).macro_f1))
+fn bar(bars: &MultiProgress, steps: usize, prefix: String) -> ProgressBar {
+    let style = ProgressStyle::with_template("{prefix} [{bar:30}] {pos}/{len} {msg} ({eta})").expect("valid template").progress_chars("=> ");
+    let b = bars.add(ProgressBar::new(steps as u64)).with_style(style);
+    b.set_prefix(prefix);
+    b
 }
 
-/// Trains `m` with AdamW, keeps the weights of the epoch with the lowest validation
-/// loss and stops after `patience` epochs without improvement.
+/// Learning rate of `epoch` (1-based) of `epochs`: cosine from `lr` down to `lr / 20`.
+fn cosine(lr: f64, epoch: usize, epochs: usize) -> f64 {
+    let t = (epoch - 1) as f64 / epochs.max(1) as f64;
+    lr * (0.05 + 0.95 * 0.5 * (1.0 + (std::f64::consts::PI * t).cos()))
+}
+
+/// Largest global gradient norm a step applies; longer gradients are scaled down to it.
+const CLIP: f64 = 5.0;
+
+fn clip(gs: &mut [&mut Grads]) {
+    let norm = gs.iter().map(|g| g.norm_sq()).sum::<f64>().sqrt();
+    if norm > CLIP {
+        gs.iter_mut().for_each(|g| g.scale((CLIP / norm) as f32));
+    }
+}
+
+/// Keeps the weights with the lowest validation loss seen, starting from the entry
+/// weights, and says when `patience` epochs brought nothing better.
+struct Keeper<T> {
+    best: T,
+    loss: f64,
+    since: usize,
+}
+
+impl<T: Clone> Keeper<T> {
+    fn new(entry: &T, loss: f64) -> Self {
+        Self { best: entry.clone(), loss, since: 0 }
+    }
+
+    /// Records an epoch; true when training should stop.
+    fn epoch(&mut self, current: &T, loss: f64, patience: usize) -> bool {
+        if loss < self.loss {
+            (self.best, self.loss, self.since) = (current.clone(), loss, 0);
+        } else {
+            self.since += 1;
+        }
+        self.since >= patience
+    }
+}
+
+/// One stage of the sampled model. Early stopping compares every epoch with the weights
+/// the stage started from, so a stage that only makes validation worse changes nothing.
 #[allow(clippy::too_many_arguments)]
-pub fn fit<M: Model>(
-    m: &M,
-    vars: &[Var],
+pub fn fit_sampled(
+    m: &mut Sampled,
+    stage: Stage,
     data: &Dataset,
     train: &[usize],
     val: &[usize],
@@ -221,70 +389,193 @@ pub fn fit<M: Model>(
     rng: &mut ChaCha8Rng,
     log: &mut Vec<EpochLog>,
     bars: &MultiProgress,
-) -> anyhow::Result<()> {
-    let mut opt =
-        AdamW::new(vars.to_vec(), ParamsAdamW { lr: o.learning_rate, weight_decay: 1e-4, ..Default::default() })?;
-    let mut best: Option<(f64, Vec<Tensor>)> = None;
-    let mut since_best = 0;
+) {
+    let epochs = if stage == Stage::Warmup { o.warmup } else { o.epochs };
+    if epochs == 0 {
+        return;
+    }
+    let seed = rng.random::<u64>();
+    let (_, entry_loss) = validate(m, data, val, o.val_patches, seed, o.threads);
+    log::info!("{}: validation loss {entry_loss:.4} at the start", stage.name());
+    let mut keeper = Keeper::new(m, entry_loss);
+    let train_attention = stage == Stage::EndToEnd;
+    let mut opt = [AdamW::new(&m.attention, 1e-4), AdamW::new(&m.features, 1e-4), AdamW::new(&m.head, 1e-4)];
     let mut order = train.to_vec();
     let steps = order.len().div_ceil(o.batch);
-    for epoch in 1..=o.epochs {
+    for epoch in 1..=epochs {
         let t0 = Instant::now();
+        let lr = cosine(o.learning_rate, epoch, epochs) as f32;
         order.shuffle(rng);
-        let bar = bars.add(ProgressBar::new(steps as u64)).with_style(
-            ProgressStyle::with_template("{prefix} [{bar:30}] {pos}/{len} {msg} ({eta})")
-                .expect("valid template")
-                .progress_chars("=> "),
-        );
-        bar.set_prefix(format!("{} epoch {epoch}/{}", M::NAME, o.epochs));
+        let b = bar(bars, steps, format!("{} epoch {epoch}/{epochs}", stage.name()));
         let mut total = 0.0;
-        for (s, chunk) in order.chunks(o.batch).enumerate() {
-            let (z, extra) = m.logits(data, chunk, rng, o)?;
-            let bce = bce_with_logits(&z, &targets(data, chunk)?)?;
-            let loss = match extra {
-                Some(e) => (&bce + e)?,
-                None => bce.clone(),
-            };
-            opt.backward_step(&loss)?;
-            total += bce.to_scalar::<f32>()? as f64 * chunk.len() as f64;
-            bar.set_message(format!("loss {:.4}", total / ((s * o.batch + chunk.len()) as f64)));
-            bar.inc(1);
+        for chunk in order.chunks(o.batch) {
+            let jobs: Vec<(usize, View, u64)> = chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng), rng.random())).collect();
+            let scale = (chunk.len() * data.samples[0].target.len()) as f32;
+            let model = &*m;
+            let done = parallel(
+                &jobs,
+                o.threads,
+                |_| Worker::new(model),
+                |w, (i, view, s)| {
+                    let mut r = ChaCha8Rng::seed_from_u64(*s);
+                    let pass = model.frame_forward(data, *i, view, |a| select(a, o.top, o.tail, &mut r), w);
+                    let mut dz = vec![0f32; pass.logits.len()];
+                    let loss = bce(&pass.logits, &data.samples[*i].target, scale, &mut dz);
+                    model.frame_backward(&pass, &dz, train_attention, o.entropy / chunk.len() as f64, w);
+                    loss
+                },
+            );
+            let (mut ga, mut gf, mut gh) = (m.attention.grads(), m.features.grads(), m.head.grads());
+            for (w, losses) in &done {
+                ga.add(&w.ga);
+                gf.add(&w.gf);
+                gh.add(&w.gh);
+                total += losses.iter().sum::<f64>() * scale as f64;
+            }
+            if train_attention {
+                clip(&mut [&mut ga, &mut gf, &mut gh]);
+                opt[0].step(&mut m.attention, &ga, lr * o.attention_rate as f32);
+            } else {
+                clip(&mut [&mut gf, &mut gh]);
+            }
+            opt[1].step(&mut m.features, &gf, lr);
+            opt[2].step(&mut m.head, &gh, lr);
+            b.inc(1);
+            b.set_message(format!("loss {:.4}", total / (b.position() as f64 * o.batch as f64 * data.samples[0].target.len() as f64)));
         }
-        bar.finish_and_clear();
-        let (val_loss, val_f1) = evaluate(m, data, val, rng, o)?;
+        b.finish_and_clear();
+        let (probs, val_loss) = validate(m, data, val, o.val_patches, seed, o.threads);
         let entry = EpochLog {
-            model: M::NAME,
+            model: stage.name(),
             epoch,
-            train_loss: total / order.len() as f64,
+            train_loss: total / (order.len() * data.samples[0].target.len()) as f64,
             val_loss,
-            val_macro_f1: val_f1,
+            val_macro_f1: macro_f1(&probs, data, val),
             seconds: t0.elapsed().as_secs_f64(),
         };
         log::info!(
-            "{} epoch {epoch}: train loss {:.4}, validation loss {:.4}, validation macro F1 {:.3} ({:.1} s)",
-            M::NAME,
+            "{} epoch {epoch}: train loss {:.4}, validation loss {val_loss:.4}, validation macro F1 {:.3} ({:.1} s)",
+            entry.model,
             entry.train_loss,
-            val_loss,
-            val_f1,
+            entry.val_macro_f1,
             entry.seconds
         );
         log.push(entry);
-        if best.as_ref().is_none_or(|(b, _)| val_loss < *b) {
-            best = Some((val_loss, vars.iter().map(|v| v.as_tensor().copy()).collect::<Result<_>>()?));
-            since_best = 0;
-        } else {
-            since_best += 1;
-            if since_best >= o.patience {
-                log::info!("{}: no better validation loss for {} epochs, stopping", M::NAME, o.patience);
-                break;
+        if keeper.epoch(m, val_loss, o.patience) {
+            log::info!("{}: no better validation loss for {} epochs, stopping", stage.name(), o.patience);
+            break;
+        }
+    }
+    log::info!("{}: keeping the weights with validation loss {:.4}", stage.name(), keeper.loss);
+    *m = keeper.best;
+}
+
+/// The thumbnail-only comparison network, trained on whole thumbnails.
+#[allow(clippy::too_many_arguments)]
+pub fn fit_baseline(
+    net: &mut Net,
+    epochs: usize,
+    data: &Dataset,
+    train: &[usize],
+    val: &[usize],
+    o: &FitOptions,
+    rng: &mut ChaCha8Rng,
+    log: &mut Vec<EpochLog>,
+    bars: &MultiProgress,
+) {
+    let (_, entry_loss) = validate_baseline(net, data, val, o.threads);
+    let mut keeper = Keeper::new(net, entry_loss);
+    let mut opt = AdamW::new(net, 1e-4);
+    let mut order = train.to_vec();
+    let steps = order.len().div_ceil(o.batch);
+    for epoch in 1..=epochs {
+        let t0 = Instant::now();
+        let lr = cosine(o.learning_rate, epoch, epochs) as f32;
+        order.shuffle(rng);
+        let b = bar(bars, steps, format!("baseline epoch {epoch}/{epochs}"));
+        let mut total = 0.0;
+        for chunk in order.chunks(o.batch) {
+            let jobs: Vec<(usize, View)> = chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng))).collect();
+            let scale = (chunk.len() * data.samples[0].target.len()) as f32;
+            let model = &*net;
+            let done = parallel(
+                &jobs,
+                o.threads,
+                |_| (Tape::default(), model.grads()),
+                |(tape, g), (i, view)| {
+                    let z = model.forward(data.thumbnail(*i, view), tape).data.clone();
+                    let mut dz = vec![0f32; z.len()];
+                    let loss = bce(&z, &data.samples[*i].target, scale, &mut dz);
+                    model.backward(tape, &dz, g, false);
+                    loss
+                },
+            );
+            let mut g = net.grads();
+            for ((_, gw), losses) in &done {
+                g.add(gw);
+                total += losses.iter().sum::<f64>() * scale as f64;
             }
+            clip(&mut [&mut g]);
+            opt.step(net, &g, lr);
+            b.inc(1);
+        }
+        b.finish_and_clear();
+        let (probs, val_loss) = validate_baseline(net, data, val, o.threads);
+        let entry = EpochLog {
+            model: "baseline",
+            epoch,
+            train_loss: total / (order.len() * data.samples[0].target.len()) as f64,
+            val_loss,
+            val_macro_f1: macro_f1(&probs, data, val),
+            seconds: t0.elapsed().as_secs_f64(),
+        };
+        log::info!("baseline epoch {epoch}: train loss {:.4}, validation loss {val_loss:.4}, validation macro F1 {:.3}", entry.train_loss, entry.val_macro_f1);
+        log.push(entry);
+        if keeper.epoch(net, val_loss, o.patience) {
+            break;
         }
     }
-    if let Some((loss, weights)) = best {
-        log::info!("{}: keeping the weights with validation loss {loss:.4}", M::NAME);
-        for (v, w) in vars.iter().zip(weights) {
-            v.set(&w)?;
+    *net = keeper.best;
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The top-plus-tail estimate is unbiased for `Σ a_i f_i` (scalar f here): its mean
+    /// over many draws matches the exact sum within a few standard errors.
+    #[test]
+    fn the_training_estimate_is_unbiased() {
+        let mut rng = ChaCha8Rng::seed_from_u64(4);
+        let a = softmax(&(0..50).map(|_| rng.random_range(-2.0f32..2.0)).collect::<Vec<_>>());
+        let f: Vec<f64> = (0..50).map(|_| rng.random_range(0.0..3.0)).collect();
+        let exact: f64 = a.iter().zip(&f).map(|(a, f)| a * f).sum();
+        let runs = 20_000;
+        let est: Vec<f64> = (0..runs)
+            .map(|_| {
+                let s = select(&a, 5, 4, &mut rng);
+                s.cells.iter().zip(&s.weights).map(|(&c, w)| w * f[c]).sum()
+            })
+            .collect();
+        let mean = est.iter().sum::<f64>() / runs as f64;
+        let sd = (est.iter().map(|e| (e - mean).powi(2)).sum::<f64>() / (runs - 1) as f64).sqrt();
+        assert!((mean - exact).abs() < 4.0 * sd / (runs as f64).sqrt(), "mean {mean} vs exact {exact} (sd {sd})");
+        // The slopes are the weights' derivatives in a: 1 for top cells, w / a for draws.
+        let s = select(&a, 5, 4, &mut rng);
+        for ((&c, &w), &d) in s.cells.iter().zip(&s.weights).zip(&s.slopes).skip(5) {
+            assert!((d * a[c] - w).abs() < 1e-12);
         }
     }
-    Ok(())
+
+    #[test]
+    fn the_keeper_keeps_the_entry_weights_when_nothing_is_better() {
+        let mut k = Keeper::new(&0u32, 0.40);
+        assert!(!k.epoch(&1, 0.45, 2));
+        assert!(k.epoch(&2, 0.41, 2), "two epochs without a better loss stop the stage");
+        assert_eq!((k.best, k.loss), (0, 0.40));
+        let mut k = Keeper::new(&0u32, 0.40);
+        k.epoch(&1, 0.30, 5);
+        k.epoch(&2, 0.35, 5);
+        assert_eq!(k.best, 1);
+    }
 }

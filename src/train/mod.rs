@@ -1,23 +1,26 @@
-//! `saccade train` (cargo feature `train`): trains a bundle on the CPU from frames with
-//! frame-level labels, and writes it in the bundle format the engine loads.
+//! `saccade train`: trains a bundle on the CPU from frames with frame-level labels, and
+//! writes it in the bundle format the engine loads.
 
 pub mod data;
 pub mod fit;
-pub mod layers;
 pub mod model;
+pub mod nn;
 
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
+use indicatif::MultiProgress;
 use rand::seq::SliceRandom;
-use rand::SeedableRng;
+use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
+use serde::Serialize;
 
 use crate::engine::bundle::{Activation, Manifest, NetworkRef, Normalization, FORMAT, MANIFEST};
+use crate::eval::metrics::{best_f1_threshold, f1, predict};
 use data::{Dataset, Shape};
-use fit::{fit, EpochLog, FitOptions, Frozen, Sampled};
-use layers::Params;
-use model::{Arch, AttentionNet, Baseline, FeatureNet, Head};
+use fit::{fit_baseline, fit_sampled, validate, validate_baseline, EpochLog, FitOptions, Sampled, Stage};
+use model::Arch;
+use nn::Net;
 
 #[derive(Clone, Debug)]
 pub struct TrainOptions {
@@ -31,7 +34,7 @@ pub struct TrainOptions {
     pub shape: Shape,
     pub arch: Arch,
     pub fit: FitOptions,
-    /// Share of the frames held out for validation and early stopping.
+    /// Share of the frames held out for validation, early stopping and thresholds.
     pub validation: f64,
     pub seed: u64,
     /// Also train the thumbnail-only comparison network, for this many epochs.
@@ -40,152 +43,159 @@ pub struct TrainOptions {
     pub max_pixels: u64,
 }
 
+/// What the held-out frames say about the trained bundle.
+#[derive(Clone, Debug, Serialize)]
+pub struct HeldOut {
+    pub frames: usize,
+    pub thresholds: Vec<f64>,
+    pub per_class_f1: Vec<f64>,
+    pub macro_f1: f64,
+    /// The thumbnail-only network's macro F1 at its own best thresholds.
+    pub baseline_macro_f1: Option<f64>,
+}
+
 pub struct Trained {
     pub sampled: Sampled,
-    pub baseline: Option<Baseline>,
+    pub baseline: Option<Net>,
     pub log: Vec<EpochLog>,
-    /// Mean loss of the sampled model on the training frames before and after training.
+    /// Mean validation loss of the sampled model before and after training.
     pub loss_before: f64,
     pub loss_after: f64,
+    pub held_out: HeldOut,
     pub manifest: Manifest,
     pub seconds: f64,
 }
 
-/// Inputs scaled so a mid-grey sheet sits near 0; the designed bundle uses the same.
+/// Inputs scaled so a mid-grey sheet sits near 0.
 const NORMALIZATION: Normalization = Normalization { mean: [0.5; 3], std: [0.25; 3] };
-/// Initial attention gain on local contrast (normalised units).
-const ATTENTION_GAIN: f32 = 30.0;
+/// Initial attention: gain on the capped local contrast (normalised units), and the cap
+/// (about 10 grey levels).
+const ATTENTION_GAIN: f32 = 50.0;
+const ATTENTION_CAP: f32 = 0.15;
 
 pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     let t0 = Instant::now();
+    if model::halvings(o.shape.stride).is_none() {
+        anyhow::bail!("--cell-stride {}: the trained attention network needs a power of two, at least 2", o.shape.stride);
+    }
+    if o.shape.patch == 0 || o.shape.patch % 8 != 0 {
+        anyhow::bail!("--patch-size {}: expected a positive multiple of 8 (the feature network halves it three times)", o.shape.patch);
+    }
     let mut items = crate::labels::read_labels(&o.labels)?;
     if let Some(dir) = &o.frames {
         crate::labels::rebase(&mut items, dir);
     }
     let classes = if o.classes.is_empty() { crate::labels::all_classes(&items) } else { o.classes.clone() };
     if classes.is_empty() {
-        anyhow::bail!(
-            "{}: no frame names a class, so there is nothing to learn (or pass --classes)",
-            o.labels.display()
-        );
+        anyhow::bail!("{}: no frame names a class, so there is nothing to learn (or pass --classes)", o.labels.display());
     }
     let data = Dataset::load(&o.labels, &items, &classes, o.shape, &NORMALIZATION, o.max_pixels)?;
     let n = data.samples.len();
     if n < 2 {
-        anyhow::bail!(
-            "{}: at least 2 labelled frames are needed (one to train on, one to validate)",
-            o.labels.display()
-        );
+        anyhow::bail!("{}: at least 2 labelled frames are needed (one to train on, one to validate)", o.labels.display());
     }
     let mut rng = ChaCha8Rng::seed_from_u64(o.seed);
     let mut order: Vec<usize> = (0..n).collect();
     order.shuffle(&mut rng);
     let held = ((n as f64 * o.validation).round() as usize).clamp(1, n - 1);
     let (val, train) = order.split_at(held);
+    let g = &data.geometry;
     log::info!(
-        "training on {} frames of {}×{} ({} held out), {} cells per frame, classes [{}]",
+        "training on {} frames of {}×{} ({} held out), {} cells per frame, classes [{}], {} thread(s)",
         train.len(),
-        data.geometry.frame_w,
-        data.geometry.frame_h,
+        g.frame_w,
+        g.frame_h,
         val.len(),
-        data.geometry.cells(),
-        classes.join(", ")
+        g.cells(),
+        classes.join(", "),
+        o.fit.threads
     );
 
-    // The thumbnail-only comparison trains on the other core meanwhile; candle runs each
-    // model on its own thread (RAYON_NUM_THREADS = 1, set by the command) so the two do
-    // not contend for one pool.
-    // One bar per model on the terminal, each on its own line.
-    let bars = indicatif::MultiProgress::new();
-    let (sampled, loss_before, loss_after, baseline, log) = std::thread::scope(|scope| -> anyhow::Result<_> {
-        let comparison = o.baseline.then(|| {
-            let (data, train, val, bars) = (&data, train, val, &bars);
-            let classes = classes.len();
-            scope.spawn(move || -> anyhow::Result<(Baseline, Vec<EpochLog>)> {
-                let mut bp = Params::new(ChaCha8Rng::seed_from_u64(o.seed ^ 0xba5e));
-                let b = Baseline::new(&mut bp, &o.arch, classes)?;
-                let mut log = Vec::new();
-                let opts = FitOptions { epochs: o.baseline_epochs, ..o.fit.clone() };
-                fit(
-                    &b,
-                    &bp.vars,
-                    data,
-                    train,
-                    val,
-                    &opts,
-                    &mut ChaCha8Rng::seed_from_u64(o.seed ^ 0xba5e),
-                    &mut log,
-                    bars,
-                )?;
-                Ok((b, log))
-            })
-        });
-        let mut params = Params::new(ChaCha8Rng::seed_from_u64(o.seed ^ 0x5eed));
-        let attention = AttentionNet::new(&mut params, &o.arch, o.shape.stride as usize, ATTENTION_GAIN)?;
-        let attention_vars = params.vars.len();
-        let sampled = Sampled {
-            attention,
-            features: FeatureNet::new(&mut params, &o.arch, o.shape.patch as usize)?,
-            head: Head::new(&mut params, &o.arch, classes.len())?,
-        };
-        let mut log = Vec::new();
-        // Same draws before and after, so the change is the weights' alone.
-        let loss_on_train = |m: &Sampled| {
-            fit::evaluate(m, &data, train, &mut ChaCha8Rng::seed_from_u64(o.seed ^ 0x1055), &o.fit).map(|(l, _)| l)
-        };
-        let loss_before = loss_on_train(&sampled)?;
-        if o.fit.warmup > 0 {
-            let frozen = Frozen::new(&sampled, &data, o.fit.batch)?;
-            let warm = FitOptions { epochs: o.fit.warmup, ..o.fit.clone() };
-            fit(&frozen, &params.vars[attention_vars..], &data, train, val, &warm, &mut rng, &mut log, &bars)?;
-        }
-        fit(&sampled, &params.vars, &data, train, val, &o.fit, &mut rng, &mut log, &bars)?;
-        let loss_after = loss_on_train(&sampled)?;
-        log::info!("sampled model: training loss {loss_before:.4} before, {loss_after:.4} after");
-        let baseline = match comparison {
-            Some(h) => {
-                let (b, blog) = h.join().expect("baseline training panicked")?;
-                log.extend(blog);
-                Some(b)
-            }
-            None => None,
-        };
-        Ok((sampled, loss_before, loss_after, baseline, log))
-    })?;
+    let bars = MultiProgress::new();
+    let mut log = Vec::new();
+    let mut init = ChaCha8Rng::seed_from_u64(o.seed ^ 0x5eed);
+    let mut m = Sampled {
+        attention: model::attention(&mut init, &o.arch, o.shape.stride, ATTENTION_GAIN, ATTENTION_CAP),
+        features: model::features(&mut init, &o.arch),
+        head: model::head(&mut init, &o.arch, classes.len()),
+    };
+    let check_seed = rng.random::<u64>();
+    let (_, loss_before) = validate(&m, &data, val, o.fit.val_patches, check_seed, o.fit.threads);
+    fit_sampled(&mut m, Stage::Warmup, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
+    fit_sampled(&mut m, Stage::EndToEnd, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
+    let (probs, loss_after) = validate(&m, &data, val, o.fit.val_patches, check_seed, o.fit.threads);
+    log::info!("sampled model: validation loss {loss_before:.4} before training, {loss_after:.4} after");
+
+    let truth: Vec<Vec<bool>> = val.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
+    let thresholds = choose_thresholds(&classes, &probs, &truth);
+    let scored = f1(&truth, &predict(&probs, &thresholds));
+    let baseline = o.baseline.then(|| {
+        let mut b = model::baseline(&mut ChaCha8Rng::seed_from_u64(o.seed ^ 0xba5e), &o.arch, classes.len());
+        fit_baseline(&mut b, o.baseline_epochs, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
+        b
+    });
+    let baseline_macro_f1 = baseline.as_ref().map(|b| {
+        let (p, _) = validate_baseline(b, &data, val, o.fit.threads);
+        f1(&truth, &predict(&p, &choose_thresholds(&classes, &p, &truth))).macro_f1
+    });
+    let held_out =
+        HeldOut { frames: val.len(), thresholds: thresholds.clone(), per_class_f1: scored.per_class, macro_f1: scored.macro_f1, baseline_macro_f1 };
+    log::info!(
+        "held out: macro F1 {:.3} (per class {}) at thresholds [{}]",
+        held_out.macro_f1,
+        held_out.per_class_f1.iter().zip(&classes).map(|(f, c)| format!("{c} {f:.3}")).collect::<Vec<_>>().join(", "),
+        thresholds.iter().map(|t| format!("{t:.3}")).collect::<Vec<_>>().join(", ")
+    );
+
     let seconds = t0.elapsed().as_secs_f64();
     let description = format!(
-        "Trained by saccade train on {} frames of {}×{} ({} held out) from {}, seed {}, {} patches per frame and step, {:.0} s on the CPU.",
+        "Trained by saccade train on {} frames of {}×{} ({} held out) from {}, seed {}, {} + {} patches per frame and step, {:.0} s on the CPU. Thresholds: best F1 per class on the held-out frames.",
         train.len(),
-        data.geometry.frame_w,
-        data.geometry.frame_h,
+        g.frame_w,
+        g.frame_h,
         val.len(),
         o.labels.file_name().map_or_else(|| o.labels.display().to_string(), |f| f.to_string_lossy().into_owned()),
         o.seed,
-        o.fit.patches,
+        o.fit.top,
+        o.fit.tail,
         seconds
     );
-    let manifest = manifest(o, &classes, &description);
-    write_bundle(&o.out, &sampled, baseline.as_ref(), &manifest, &log)?;
-    Ok(Trained { sampled, baseline, log, loss_before, loss_after, manifest, seconds })
+    let manifest = manifest(o, &classes, &thresholds, &description);
+    write_bundle(&o.out, &m, baseline.as_ref(), &manifest, &log, &held_out)?;
+    Ok(Trained { sampled: m, baseline, log, loss_before, loss_after, held_out, manifest, seconds })
 }
 
-fn manifest(o: &TrainOptions, classes: &[String], description: &str) -> Manifest {
-    let net = |file: &str, input: &str, output: &str| NetworkRef {
-        file: file.into(),
-        input: input.into(),
-        output: output.into(),
-    };
+/// Per class, [`best_f1_threshold`] on the held-out probabilities; 0.5 for a class that
+/// no held-out frame carries (with a warning).
+fn choose_thresholds(classes: &[String], probs: &[Vec<f64>], truth: &[Vec<bool>]) -> Vec<f64> {
+    (0..classes.len())
+        .map(|c| {
+            let scores: Vec<f64> = probs.iter().map(|p| p[c]).collect();
+            let t: Vec<bool> = truth.iter().map(|t| t[c]).collect();
+            match best_f1_threshold(&scores, &t) {
+                Some(th) => th.threshold,
+                None => {
+                    log::warn!("no held-out frame carries {:?}: its threshold stays at 0.5", classes[c]);
+                    0.5
+                }
+            }
+        })
+        .collect()
+}
+
+fn manifest(o: &TrainOptions, classes: &[String], thresholds: &[f64], description: &str) -> Manifest {
+    let net = |file: &str, input: &str, output: &str| NetworkRef { file: file.into(), input: input.into(), output: output.into() };
     Manifest {
         format: FORMAT,
         name: o.name.clone(),
         description: description.into(),
         classes: classes.to_vec(),
         activation: Activation::Sigmoid,
-        thresholds: vec![0.5; classes.len()],
+        thresholds: thresholds.to_vec(),
         thumbnail_factor: o.shape.factor,
         cell_stride: o.shape.stride,
         patch_size: o.shape.patch,
-        feature_dim: o.arch.feature_dim,
+        feature_dim: o.arch.feature_dim(),
         normalization: NORMALIZATION,
         attention: net("attention.onnx", "thumbnail", "scores"),
         features: net("features.onnx", "patches", "features"),
@@ -194,26 +204,29 @@ fn manifest(o: &TrainOptions, classes: &[String], description: &str) -> Manifest
     }
 }
 
-/// Writes the ONNX files, `bundle.toml` and `training.jsonl` (one line per epoch).
+/// Writes the ONNX files, `bundle.toml`, `training.jsonl` (one line per epoch) and
+/// `held-out.json` (thresholds and F1 on the held-out frames).
 pub fn write_bundle(
     dir: &Path,
     s: &Sampled,
-    baseline: Option<&Baseline>,
+    baseline: Option<&Net>,
     m: &Manifest,
     log: &[EpochLog],
+    held_out: &HeldOut,
 ) -> anyhow::Result<()> {
     use anyhow::Context;
     std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
-    let write = |name: &str, bytes: Vec<u8>| {
-        std::fs::write(dir.join(name), bytes).with_context(|| format!("writing {}", dir.join(name).display()))
-    };
-    write("attention.onnx", s.attention.onnx()?)?;
-    write("features.onnx", s.features.onnx()?)?;
-    write("head.onnx", s.head.onnx()?)?;
+    let write =
+        |name: &str, bytes: Vec<u8>| std::fs::write(dir.join(name), bytes).with_context(|| format!("writing {}", dir.join(name).display()));
+    let (d, c) = (m.feature_dim, m.classes.len());
+    write("attention.onnx", model::attention_onnx(&s.attention))?;
+    write("features.onnx", model::features_onnx(&s.features, m.patch_size as usize, d))?;
+    write("head.onnx", model::head_onnx(&s.head, d, c))?;
     if let Some(b) = baseline {
-        write("baseline.onnx", b.onnx()?)?;
+        write("baseline.onnx", model::baseline_onnx(b, c))?;
     }
     write(MANIFEST, toml::to_string_pretty(m)?.into_bytes())?;
     let lines: Vec<String> = log.iter().map(serde_json::to_string).collect::<Result<_, _>>()?;
-    write("training.jsonl", (lines.join("\n") + "\n").into_bytes())
+    write("training.jsonl", (lines.join("\n") + "\n").into_bytes())?;
+    write("held-out.json", (serde_json::to_string_pretty(held_out)? + "\n").into_bytes())
 }

@@ -1,276 +1,236 @@
 //! The networks a bundle holds, as trained here, and their export to ONNX.
 //!
-//! Only plain operators: patch-embedding and 3×3 convolutions, ReLU, max pooling and
-//! dense layers. DEVELOPERS.md ("Trainer architectures") has the per-patch times of the
-//! feature-network presets in tract and onnxruntime.
+//! Only plain operators: 3×3 convolutions with zero padding (runtimes fold it into the
+//! convolution), ReLU, max pooling, a global max, dense layers and a log. DEVELOPERS.md
+//! ("Trainer architectures") has the per-patch times of the presets in tract and
+//! onnxruntime.
 
-use candle_core::{Result, Tensor, D};
+use rand_chacha::ChaCha8Rng;
 
-use super::layers::{fold, global_max, max_pool, Conv, Dense, Params};
+use super::nn::{small, Conv, Layer, Net};
 use crate::onnx::writer::{Dim, GraphWriter};
 
 const PRODUCER: &str = "saccade-train";
 
-/// Channel widths of the three networks.
-#[derive(Clone, Copy, Debug)]
+/// Channel widths of the networks.
+#[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Arch {
-    pub attention: usize,
-    /// Side of the feature network's first, non-overlapping convolution.
-    pub embed: usize,
-    pub features: [usize; 2],
-    pub feature_dim: usize,
+    /// Attention: full thumbnail resolution, after each halving, at the cell grid.
+    pub attention: [usize; 3],
+    /// Feature network: the 3×3 layers at 1, 1/2, 1/4 and 1/8 of the patch side; the last
+    /// one's width is the feature dimension.
+    pub features: [usize; 4],
     pub head_hidden: usize,
-    pub baseline: [usize; 3],
+    /// Thumbnail-only comparison network.
+    pub baseline: [usize; 4],
 }
 
 impl Arch {
-    /// Named shapes of the feature network; `compact` is the default.
+    pub const PRESETS: [&'static str; 2] = ["standard", "small"];
+
     pub fn preset(name: &str) -> Option<Self> {
-        let base = Self {
-            attention: 8,
-            embed: 4,
-            features: [16, 32],
-            feature_dim: 32,
-            head_hidden: 32,
-            baseline: [12, 16, 32],
-        };
+        let standard = Self { attention: [8, 16, 16], features: [8, 16, 32, 32], head_hidden: 32, baseline: [12, 16, 32, 32] };
         match name {
-            "compact" => Some(base),
-            "wide" => Some(Self { features: [32, 64], ..base }),
-            "coarse" => Some(Self { embed: 8, features: [32, 32], ..base }),
+            "standard" => Some(standard),
+            "small" => Some(Self { features: [8, 12, 24, 24], ..standard }),
             _ => None,
         }
     }
 
-    pub const PRESETS: [&'static str; 3] = ["compact", "wide", "coarse"];
+    pub fn feature_dim(&self) -> usize {
+        self.features[3]
+    }
 }
 
 impl Default for Arch {
     fn default() -> Self {
-        Self::preset("compact").expect("default preset exists")
+        Self::preset("standard").expect("default preset exists")
     }
+}
+
+fn conv3(rng: &mut ChaCha8Rng, cin: usize, cout: usize) -> Layer {
+    Layer::Conv(Conv::new(rng, cin, cout, 3, 1, 1))
+}
+
+/// Halvings from the thumbnail to the cell grid: `stride = 2^n`, `n ≥ 1`.
+pub fn halvings(stride: u32) -> Option<usize> {
+    (stride >= 2 && stride.is_power_of_two()).then(|| stride.trailing_zeros() as usize)
+}
+
+/// Thumbnail → one score per cell. A 3×3 layer (edge-padded) at the thumbnail's own resolution (where a
+/// mark of a few frame pixels is still a distinct thumbnail pixel), then max pools with a
+/// 3×3 layer after each, down to the cell grid, and a 1×1 layer to the score.
+///
+/// It starts as a capped local-contrast detector: channels 0 and 1 of the first layer are
+/// the grey Laplacian of either sign, the later layers carry their sum through, and the
+/// score is `gain · min(|Laplacian|, cap)` at the cell's strongest point. The cap keeps
+/// large marks from drowning small ones in the softmax, so the first steps already look
+/// at every kind of mark; training then learns which of them matter.
+pub fn attention(rng: &mut ChaCha8Rng, a: &Arch, stride: u32, gain: f32, cap: f32) -> Net {
+    let n = halvings(stride).expect("cell stride is a power of two");
+    let [c1, c2, c3] = a.attention;
+    let mut layers = vec![Layer::PadEdge(1), Layer::Conv(Conv::new(rng, 3, c1, 3, 1, 0)), Layer::Relu];
+    let mut c = c1;
+    for _ in 0..n {
+        layers.extend([Layer::MaxPool(2), conv3(rng, c, c2), Layer::Relu]);
+        c = c2;
+    }
+    layers.extend([conv3(rng, c, c3), Layer::Relu, Layer::Conv(Conv::new(rng, c3, 1, 1, 1, 0))]);
+    let mut net = Net::new(layers);
+    let last = net.convs_mut().count() - 1;
+    for (j, conv) in net.convs_mut().enumerate() {
+        let (cin, cout) = (conv.cin, conv.cout);
+        let at = |tap: usize, ci: usize, co: usize| (tap * cin + ci) * cout + co;
+        if j == 0 {
+            for tap in 0..9 {
+                let lap = if tap == 4 { 1.0 } else { -1.0 / 8.0 };
+                for ch in 0..3 {
+                    conv.w[at(tap, ch, 0)] = lap / 3.0;
+                    conv.w[at(tap, ch, 1)] = -lap / 3.0;
+                }
+            }
+        } else if j < last {
+            // Outputs 0 (and 1 in the last 3×3 layer) read only input channels 0 (and 1).
+            let keep = if j + 1 == last { 2 } else { 1 };
+            for tap in 0..9 {
+                for ci in 0..cin {
+                    for co in 0..keep {
+                        conv.w[at(tap, ci, co)] = 0.0;
+                    }
+                }
+            }
+            let sum_in = if j == 1 { 2 } else { 1 };
+            for co in 0..keep {
+                for ci in 0..sum_in {
+                    conv.w[at(4, ci, co)] = 1.0;
+                }
+            }
+            if keep == 2 {
+                conv.b[1] = -cap;
+            }
+        } else {
+            conv.w = vec![0.0; cin];
+            conv.w[0] = gain;
+            conv.w[1] = -gain;
+        }
+    }
+    net
+}
+
+/// Patch → feature vector: four 3×3 layers with a 2×2 max pool between each, all
+/// followed by ReLU, and a global max, so features are non-negative evidence that
+/// averages sensibly under the attention weights. The patch side must be a multiple of 8.
+pub fn features(rng: &mut ChaCha8Rng, a: &Arch) -> Net {
+    let [f1, f2, f3, f4] = a.features;
+    Net::new(vec![
+        conv3(rng, 3, f1),
+        Layer::Relu,
+        Layer::MaxPool(2),
+        conv3(rng, f1, f2),
+        Layer::Relu,
+        Layer::MaxPool(2),
+        conv3(rng, f2, f3),
+        Layer::Relu,
+        Layer::MaxPool(2),
+        conv3(rng, f3, f4),
+        Layer::Relu,
+        Layer::GlobalMax,
+    ])
+}
+
+/// Offset inside the head's log: evidence well below it counts as none.
+pub const HEAD_EPS: f32 = 1e-3;
+
+/// Psi → class logits: `ln(Psi + eps)`, one hidden ReLU layer, one logit per class.
+pub fn head(rng: &mut ChaCha8Rng, a: &Arch, classes: usize) -> Net {
+    let mut first = Conv::dense(rng, a.feature_dim(), a.head_hidden);
+    first.b = small(rng, a.head_hidden, 0.1);
+    Net::new(vec![Layer::LogRelu(HEAD_EPS), Layer::Conv(first), Layer::Relu, Layer::Conv(Conv::dense(rng, a.head_hidden, classes))])
+}
+
+/// The thumbnail-only comparison: a small CNN on the same thumbnail, trained with the
+/// same loss, that never looks at full resolution.
+pub fn baseline(rng: &mut ChaCha8Rng, a: &Arch, classes: usize) -> Net {
+    let [b1, b2, b3, b4] = a.baseline;
+    Net::new(vec![
+        Layer::PadEdge(1),
+        Layer::Conv(Conv::new(rng, 3, b1, 3, 1, 0)),
+        Layer::Relu,
+        Layer::MaxPool(2),
+        conv3(rng, b1, b2),
+        Layer::Relu,
+        Layer::MaxPool(2),
+        conv3(rng, b2, b3),
+        Layer::Relu,
+        Layer::MaxPool(2),
+        conv3(rng, b3, b4),
+        Layer::Relu,
+        Layer::GlobalMax,
+        Layer::Conv(Conv::dense(rng, b4, classes)),
+    ])
 }
 
 fn thumbnail_input(g: &mut GraphWriter) -> String {
     g.input("thumbnail", &[Dim::Fixed(1), Dim::Fixed(3), Dim::Symbol("height"), Dim::Symbol("width")])
 }
 
-/// Thumbnail → one score per cell: a 2×2 patch embedding, a 3×3 convolution, a max pool
-/// to the cell grid and two 1×1 convolutions. Embedding first keeps the costly 3×3 layer
-/// at a quarter of the thumbnail's pixels.
-pub struct AttentionNet {
-    c1: Conv,
-    c2: Conv,
-    c3: Conv,
-    c4: Conv,
-    pub stride: usize,
+pub fn attention_onnx(net: &Net) -> Vec<u8> {
+    let mut g = GraphWriter::new("attention");
+    let x = thumbnail_input(&mut g);
+    let s = net.onnx(&mut g, &x);
+    g.output(&s, "scores", &[Dim::Fixed(1), Dim::Fixed(1), Dim::Symbol("rows"), Dim::Symbol("cols")]);
+    g.finish(PRODUCER)
 }
 
-impl AttentionNet {
-    /// Starts as a local-contrast detector (channel 0 of the embedding is the grey level,
-    /// channels 0 and 1 of the 3×3 layer its Laplacian of either sign, summed through to
-    /// the score) so that sampling finds candidate marks from the first step; training
-    /// then learns which of them matter.
-    pub fn new(p: &mut Params, a: &Arch, stride: usize, gain: f32) -> Result<Self> {
-        assert!(stride % 2 == 0 && stride >= 2, "the trained attention network needs an even cell stride");
-        let ch = a.attention;
-        let c1 = Conv::new(p, 3, ch, 2, 2)?;
-        let c2 = Conv::new(p, ch, ch, 3, 1)?;
-        let c3 = Conv::new(p, ch, ch, 1, 1)?;
-        let c4 = Conv::new(p, ch, 1, 1, 1)?;
-        let small = |p: &mut Params, n: usize| -> Vec<f32> {
-            (0..n).map(|_| rand::Rng::random_range(p.rng(), -0.05f32..0.05)).collect()
-        };
-        // Rows are (dy, dx, c); columns output channels.
-        let mut w1 = small(p, 12 * ch);
-        for r in 0..12 {
-            w1[r * ch] = 1.0 / 12.0;
-        }
-        c1.set(&w1, &vec![0.0; ch])?;
-        let mut w2 = small(p, 9 * ch * ch);
-        for t in 0..9 {
-            let lap = if t == 4 { 1.0 } else { -1.0 / 8.0 };
-            for c in 0..ch {
-                w2[(t * ch + c) * ch] = if c == 0 { lap } else { 0.0 };
-                w2[(t * ch + c) * ch + 1] = if c == 0 { -lap } else { 0.0 };
-            }
-        }
-        c2.set(&w2, &vec![0.0; ch])?;
-        let mut w3 = small(p, ch * ch);
-        for c in 0..ch {
-            w3[c * ch] = if c < 2 { 1.0 } else { 0.0 };
-        }
-        c3.set(&w3, &vec![0.0; ch])?;
-        let mut w4 = vec![0.0; ch];
-        w4[0] = gain;
-        c4.set(&w4, &[0.0])?;
-        Ok(Self { c1, c2, c3, c4, stride })
-    }
-
-    /// `[B, H, W, 3]` (H, W multiples of the stride) → scores `[B, cells]`, row-major.
-    pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        self.forward_folded(&fold(x, 2)?)
-    }
-
-    /// The same on a thumbnail folded 2×2 ([`fold`]), as training stores it.
-    pub fn forward_folded(&self, x: &Tensor) -> Result<Tensor> {
-        let h = self.c2.forward(&self.c1.forward_folded(x)?)?.relu()?;
-        let h = max_pool(&h, self.stride / 2)?;
-        let s = self.c4.forward(&self.c3.forward(&h)?.relu()?)?;
-        let b = s.dim(0)?;
-        s.reshape((b, ()))
-    }
-
-    pub fn onnx(&self) -> Result<Vec<u8>> {
-        let mut g = GraphWriter::new("attention");
-        let x = thumbnail_input(&mut g);
-        let h = self.c1.onnx(&mut g, &x)?;
-        let h = self.c2.onnx(&mut g, &h)?;
-        let h = g.unary("Relu", &h);
-        let h = g.max_pool_ceil(&h, self.stride / 2);
-        let h = self.c3.onnx(&mut g, &h)?;
-        let h = g.unary("Relu", &h);
-        let s = self.c4.onnx(&mut g, &h)?;
-        g.output(&s, "scores", &[Dim::Fixed(1), Dim::Fixed(1), Dim::Symbol("rows"), Dim::Symbol("cols")]);
-        Ok(g.finish(PRODUCER))
-    }
+pub fn features_onnx(net: &Net, patch: usize, dim: usize) -> Vec<u8> {
+    let mut g = GraphWriter::new("features");
+    let p = patch as i64;
+    let x = g.input("patches", &[Dim::Symbol("batch"), Dim::Fixed(3), Dim::Fixed(p), Dim::Fixed(p)]);
+    let f = net.onnx(&mut g, &x);
+    g.output(&f, "features", &[Dim::Symbol("batch"), Dim::Fixed(dim as i64)]);
+    g.finish(PRODUCER)
 }
 
-/// Patch → feature vector: a 4×4 (or 8×8) patch embedding, 3×3 convolution, 2×2 max pool, 3×3
-/// convolution and a global max, all followed by ReLU so features are non-negative
-/// evidence that averages sensibly under the attention weights.
-pub struct FeatureNet {
-    pub c1: Conv,
-    c2: Conv,
-    c3: Conv,
-    pub patch: usize,
-    pub dim: usize,
+pub fn head_onnx(net: &Net, dim: usize, classes: usize) -> Vec<u8> {
+    let mut g = GraphWriter::new("head");
+    let x = g.input("psi", &[Dim::Symbol("n"), Dim::Fixed(dim as i64)]);
+    let z = net.onnx(&mut g, &x);
+    g.output(&z, "logits", &[Dim::Symbol("n"), Dim::Fixed(classes as i64)]);
+    g.finish(PRODUCER)
 }
 
-impl FeatureNet {
-    pub fn new(p: &mut Params, a: &Arch, patch: usize) -> Result<Self> {
-        assert!(patch % (2 * a.embed) == 0, "patch size must be a multiple of twice the embedding side");
-        let [f1, f2] = a.features;
-        Ok(Self {
-            c1: Conv::new(p, 3, f1, a.embed, a.embed)?,
-            c2: Conv::new(p, f1, f2, 3, 1)?,
-            c3: Conv::new(p, f2, a.feature_dim, 3, 1)?,
-            patch,
-            dim: a.feature_dim,
-        })
-    }
-
-    /// `[N, P, P, 3]` → `[N, D]`.
-    pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        self.forward_folded(&fold(x, self.c1.k)?)
-    }
-
-    /// The same on patches folded by the embedding side ([`fold`]), as training makes them.
-    pub fn forward_folded(&self, x: &Tensor) -> Result<Tensor> {
-        let h = self.c1.forward_folded(x)?.relu()?;
-        let h = max_pool(&self.c2.forward(&h)?.relu()?, 2)?;
-        global_max(&self.c3.forward(&h)?.relu()?)
-    }
-
-    pub fn onnx(&self) -> Result<Vec<u8>> {
-        let mut g = GraphWriter::new("features");
-        let p = self.patch as i64;
-        let x = g.input("patches", &[Dim::Symbol("batch"), Dim::Fixed(3), Dim::Fixed(p), Dim::Fixed(p)]);
-        let h = self.c1.onnx(&mut g, &x)?;
-        let h = g.unary("Relu", &h);
-        let h = self.c2.onnx(&mut g, &h)?;
-        let h = g.unary("Relu", &h);
-        let h = g.pool("MaxPool", &h, 2, 2);
-        let h = self.c3.onnx(&mut g, &h)?;
-        let h = g.unary("Relu", &h);
-        let f = g.global_pool("GlobalMaxPool", &h);
-        g.output(&f, "features", &[Dim::Symbol("batch"), Dim::Fixed(self.dim as i64)]);
-        Ok(g.finish(PRODUCER))
-    }
+pub fn baseline_onnx(net: &Net, classes: usize) -> Vec<u8> {
+    let mut g = GraphWriter::new("baseline");
+    let x = thumbnail_input(&mut g);
+    let z = net.onnx(&mut g, &x);
+    g.output(&z, "logits", &[Dim::Fixed(1), Dim::Fixed(classes as i64)]);
+    g.finish(PRODUCER)
 }
 
-/// Psi → class logits: one hidden ReLU layer.
-pub struct Head {
-    d1: Dense,
-    d2: Dense,
-}
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::train::nn::Act;
+    use rand::SeedableRng;
 
-impl Head {
-    pub fn new(p: &mut Params, a: &Arch, classes: usize) -> Result<Self> {
-        Ok(Self { d1: Dense::new(p, a.feature_dim, a.head_hidden)?, d2: Dense::new(p, a.head_hidden, classes)? })
+    /// The initial attention scores a bright dot by its contrast, capped, and flat ground
+    /// by nothing.
+    #[test]
+    fn attention_starts_as_capped_local_contrast() {
+        let mut rng = ChaCha8Rng::seed_from_u64(1);
+        let (gain, cap) = (40.0, 0.15);
+        let net = attention(&mut rng, &Arch::default(), 4, gain, cap);
+        let (h, w) = (16, 16);
+        let mut x = vec![0.1f32; h * w * 3];
+        let dot = |x: &mut Vec<f32>, y: usize, xx: usize, v: f32| x[(y * w + xx) * 3..][..3].fill(v);
+        dot(&mut x, 2, 2, 0.1 + 0.05); // faint: below the cap
+        dot(&mut x, 9, 13, 0.1 + 1.0); // strong: capped
+        let s = net.infer(Act::new(1, h, w, 3, x)).data;
+        assert_eq!(s.len(), 16);
+        // The dot's Laplacian (0.05) plus the strongest of its ring of negative Laplacian
+        // (0.05 / 8), each channel pooled on its own.
+        assert!((s[0] - gain * (0.05 + 0.05 / 8.0)).abs() < 1e-4, "faint dot scores {}", s[0]);
+        assert!((s[2 * 4 + 3] - gain * cap).abs() < 1e-4, "strong dot scores {}", s[11]);
+        assert!(s.iter().enumerate().filter(|(i, _)| ![0, 11].contains(i)).all(|(_, v)| v.abs() < 1e-4), "{s:?}");
     }
-
-    pub fn forward(&self, psi: &Tensor) -> Result<Tensor> {
-        self.d2.forward(&self.d1.forward(psi)?.relu()?)
-    }
-
-    pub fn onnx(&self) -> Result<Vec<u8>> {
-        let mut g = GraphWriter::new("head");
-        let x = g.input("psi", &[Dim::Symbol("n"), Dim::Fixed(self.d1.din as i64)]);
-        let h = self.d1.onnx(&mut g, &x)?;
-        let h = g.unary("Relu", &h);
-        let z = self.d2.onnx(&mut g, &h)?;
-        g.output(&z, "logits", &[Dim::Symbol("n"), Dim::Fixed(self.d2.dout as i64)]);
-        Ok(g.finish(PRODUCER))
-    }
-}
-
-/// The thumbnail-only comparison: a small CNN on the same thumbnail, trained with the
-/// same loss, that never looks at full resolution. 2×2 embedding, then 3×3 convolutions
-/// and 2×2 max pools, a global max and a linear layer.
-pub struct Baseline {
-    c1: Conv,
-    c2: Conv,
-    c3: Conv,
-    c4: Conv,
-    out: Dense,
-}
-
-impl Baseline {
-    pub fn new(p: &mut Params, a: &Arch, classes: usize) -> Result<Self> {
-        let [b1, b2, b3] = a.baseline;
-        Ok(Self {
-            c1: Conv::new(p, 3, b1, 2, 2)?,
-            c2: Conv::new(p, b1, b2, 3, 1)?,
-            c3: Conv::new(p, b2, b3, 3, 1)?,
-            c4: Conv::new(p, b3, b3, 3, 1)?,
-            out: Dense::new(p, b3, classes)?,
-        })
-    }
-
-    /// `[B, H, W, 3]` (H, W multiples of 8) → logits `[B, classes]`.
-    pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        self.forward_folded(&fold(x, 2)?)
-    }
-
-    /// The same on a thumbnail folded 2×2 ([`fold`]).
-    pub fn forward_folded(&self, x: &Tensor) -> Result<Tensor> {
-        let h = self.c2.forward(&self.c1.forward_folded(x)?)?.relu()?;
-        let h = max_pool(&self.c3.forward(&max_pool(&h, 2)?)?.relu()?, 2)?;
-        let h = self.c4.forward(&h)?.relu()?;
-        self.out.forward(&global_max(&h)?)
-    }
-
-    pub fn onnx(&self) -> Result<Vec<u8>> {
-        let mut g = GraphWriter::new("baseline");
-        let x = thumbnail_input(&mut g);
-        let h = self.c1.onnx(&mut g, &x)?;
-        let h = self.c2.onnx(&mut g, &h)?;
-        let h = g.unary("Relu", &h);
-        let h = g.max_pool_ceil(&h, 2);
-        let h = self.c3.onnx(&mut g, &h)?;
-        let h = g.unary("Relu", &h);
-        let h = g.max_pool_ceil(&h, 2);
-        let h = self.c4.onnx(&mut g, &h)?;
-        let h = g.unary("Relu", &h);
-        let f = g.global_pool("GlobalMaxPool", &h);
-        let z = self.out.onnx(&mut g, &f)?;
-        g.output(&z, "logits", &[Dim::Fixed(1), Dim::Fixed(self.out.dout as i64)]);
-        Ok(g.finish(PRODUCER))
-    }
-}
-
-/// Log-softmax over cells, `[B, N]`.
-pub fn log_attention(scores: &Tensor) -> Result<Tensor> {
-    candle_nn::ops::log_softmax(scores, D::Minus1)
 }
