@@ -4,9 +4,11 @@
 //! `{"frame": "sheet-000001.jpg", "classes": ["pinhole", "stain"]}`. `frame` is a path
 //! relative to the labels file's folder (or absolute); `classes` lists the classes present
 //! (empty for a clean frame). An optional `defects` list gives where marks are, each
-//! `{"kind": CLASS, "x": X, "y": Y}` in frame pixels; training never reads it, but
-//! `saccade sweep` uses it to say whether attention looked at the marks. Other keys are
-//! allowed and ignored. Blank lines are skipped.
+//! `{"kind": CLASS, "x": X, "y": Y}` in frame pixels, and an optional `lookalikes` list
+//! where benign marks that resemble defects are (`kind` free text). Training never reads
+//! either; `saccade sweep` uses them to say whether attention looked at the marks, and
+//! `saccade probe` to test the feature network there. Other keys are allowed and
+//! ignored. Blank lines are skipped.
 
 use std::path::{Path, PathBuf};
 
@@ -32,6 +34,8 @@ pub struct Labelled {
     pub line: usize,
     /// Known positions of marks (optional; for diagnostics only).
     pub marks: Vec<MarkAt>,
+    /// Known positions of benign look-alikes (optional; for diagnostics only).
+    pub lookalikes: Vec<MarkAt>,
 }
 
 /// Where a mark of a class is, in frame pixels.
@@ -53,6 +57,8 @@ struct Line {
     classes: Vec<String>,
     #[serde(default)]
     defects: Vec<MarkAt>,
+    #[serde(default)]
+    lookalikes: Vec<MarkAt>,
 }
 
 pub fn read_labels(path: &Path) -> Result<Vec<Labelled>, LabelError> {
@@ -78,12 +84,25 @@ pub fn read_labels(path: &Path) -> Result<Vec<Labelled>, LabelError> {
         classes.sort();
         classes.dedup();
         if let Some(m) = l.defects.iter().find(|m| !classes.contains(&m.class)) {
-            return Err(err(Some(line), format!("defects: a {:?} mark, but \"classes\" does not list {:?}", m.class, m.class)));
+            return Err(err(
+                Some(line),
+                format!("defects: a {:?} mark, but \"classes\" does not list {:?}", m.class, m.class),
+            ));
         }
-        if let Some(m) = l.defects.iter().find(|m| !(m.x.is_finite() && m.y.is_finite())) {
-            return Err(err(Some(line), format!("defects: position ({}, {}) is not a pair of finite numbers", m.x, m.y)));
+        if let Some(m) = l.defects.iter().chain(&l.lookalikes).find(|m| !(m.x.is_finite() && m.y.is_finite())) {
+            return Err(err(
+                Some(line),
+                format!("{}: position ({}, {}) is not a pair of finite numbers", m.class, m.x, m.y),
+            ));
         }
-        out.push(Labelled { frame: base.join(&l.frame), name: l.frame, classes, line, marks: l.defects });
+        out.push(Labelled {
+            frame: base.join(&l.frame),
+            name: l.frame,
+            classes,
+            line,
+            marks: l.defects,
+            lookalikes: l.lookalikes,
+        });
     }
     if out.is_empty() {
         return Err(err(None, "the labels file lists no frames".into()));
@@ -146,6 +165,20 @@ mod tests {
         assert_eq!(class_matrix(&items, &classes, &p).unwrap(), vec![vec![true, true], vec![false, false]]);
         let e = class_matrix(&items, &["stain".to_string()], &p).unwrap_err().to_string();
         assert!(e.ends_with("labels.jsonl:1: class \"pinhole\" is not one of the model's classes [stain]"), "{e}");
+    }
+
+    #[test]
+    fn mark_positions_are_read_and_checked() {
+        let (_d, p) = write(concat!(
+            "{\"frame\":\"a.jpg\",\"classes\":[\"knot\"],\"defects\":[{\"kind\":\"knot\",\"x\":10.5,\"y\":3,\"extent\":4}],",
+            "\"lookalikes\":[{\"kind\":\"fleck\",\"x\":1,\"y\":2}]}\n"
+        ));
+        let items = read_labels(&p).unwrap();
+        assert_eq!(items[0].marks, [MarkAt { class: "knot".into(), x: 10.5, y: 3.0, extent: Some(4.0) }]);
+        assert_eq!(items[0].lookalikes[0].class, "fleck");
+        let (_d, p) = write("{\"frame\":\"a.jpg\",\"classes\":[],\"defects\":[{\"kind\":\"knot\",\"x\":1,\"y\":1}]}\n");
+        let e = read_labels(&p).unwrap_err().to_string();
+        assert!(e.contains(":1: defects: a \"knot\" mark, but \"classes\" does not list \"knot\""), "{e}");
     }
 
     #[test]

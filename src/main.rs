@@ -18,6 +18,7 @@ enum Command {
     Demo(cli::demo::DemoArgs),
     Bench(cli::bench::BenchArgs),
     Sweep(cli::sweep::SweepArgs),
+    Probe(cli::probe::ProbeArgs),
     Scene(cli::scene::SceneArgs),
     #[cfg(feature = "train")]
     Train(cli::train::TrainArgs),
@@ -59,6 +60,7 @@ fn main() -> ExitCode {
         Command::Demo(a) => cli::demo::run(a),
         Command::Bench(a) => cli::bench::run(a),
         Command::Sweep(a) => cli::sweep::run(a),
+        Command::Probe(a) => cli::probe::run(a),
         Command::Scene(a) => cli::scene::run(a),
         #[cfg(feature = "train")]
         Command::Train(a) => cli::train::run(a),

@@ -103,15 +103,21 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
     let mut cases: Vec<(&str, &str, Vec<usize>, Vec<f32>, Vec<f32>)> = Vec::new();
     let thumb = rand(32 * 48 * 3);
     let x = Act::new(1, 32, 48, 3, thumb.clone());
-    cases.push(("attention.onnx", "thumbnail", vec![1, 3, 32, 48], planar(&thumb, 1, 32, 48), s.attention.infer(x.clone()).data));
+    cases.push((
+        "attention.onnx",
+        "thumbnail",
+        vec![1, 3, 32, 48],
+        planar(&thumb, 1, 32, 48),
+        s.attention.infer(x.clone()).data,
+    ));
     let b = t.baseline.as_ref().unwrap();
     cases.push(("baseline.onnx", "thumbnail", vec![1, 3, 32, 48], planar(&thumb, 1, 32, 48), b.infer(x).data));
     let patches = rand(5 * 48 * 48 * 3);
     let x = Act::new(5, 48, 48, 3, patches.clone());
     cases.push(("features.onnx", "patches", vec![5, 3, 48, 48], planar(&patches, 5, 48, 48), s.features.infer(x).data));
-    let psi: Vec<f32> = rand(3 * 32).iter().map(|v| v.abs()).collect();
-    let x = Act::new(3, 1, 1, 32, psi.clone());
-    cases.push(("head.onnx", "psi", vec![3, 32], psi, s.head.infer(x).data));
+    let psi: Vec<f32> = rand(3 * 4).iter().map(|v| v.abs()).collect();
+    let x = Act::new(3, 1, 1, 4, psi.clone());
+    cases.push(("head.onnx", "psi", vec![3, 4], psi, s.head.infer(x).data));
 
     let nets = [
         ("attention.onnx", &bundle.attention),
@@ -129,7 +135,8 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
         jobs.push(json!({ "model": out.join(file), "input": input, "shape": shape, "data": data }));
     }
     // Reference: the ONNX checker (onnx, PyPI) and onnxruntime (PyPI), CPU, one thread.
-    let theirs: Value = serde_json::from_str(&common::run_reference("onnx_run.py", &[], &Value::Array(jobs).to_string())).unwrap();
+    let theirs: Value =
+        serde_json::from_str(&common::run_reference("onnx_run.py", &[], &Value::Array(jobs).to_string())).unwrap();
     for (((file, ..), ours), r) in cases.iter().zip(&tract_out).zip(theirs.as_array().unwrap()) {
         let r: Vec<f32> = r["data"].as_array().unwrap().iter().map(|v| v.as_f64().unwrap() as f32).collect();
         close(&format!("{file}: tract vs onnxruntime"), ours, &r);
@@ -156,8 +163,8 @@ fn a_stage_that_only_hurts_keeps_the_entry_weights() {
     let mut rng = ChaCha8Rng::seed_from_u64(1);
     let mut m = saccade::train::fit::Sampled {
         attention: saccade::train::model::attention(&mut rng, &o.arch, 4, 50.0, 0.15),
-        features: saccade::train::model::features(&mut rng, &o.arch),
-        head: saccade::train::model::head(&mut rng, &o.arch, 4),
+        features: saccade::train::model::features(&mut rng, &o.arch, 4),
+        head: saccade::train::model::head(&mut rng, 4),
     };
     let entry = m.clone();
     let (train, val): (Vec<usize>, Vec<usize>) = ((0..6).collect(), vec![6, 7]);

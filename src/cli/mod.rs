@@ -3,6 +3,7 @@
 pub mod analyze;
 pub mod bench;
 pub mod demo;
+pub mod probe;
 pub mod run;
 pub mod scene;
 pub mod sweep;

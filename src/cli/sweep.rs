@@ -21,7 +21,7 @@ use saccade::engine::{Bundle, Engine, EstimatorKind, Settings};
 use saccade::eval::csv;
 use saccade::eval::plot::{self, SweepPlot};
 use saccade::eval::rows::{recommend, within_tolerance, Row, RowKind, Tally};
-use saccade::labels::{class_matrix, read_labels};
+use saccade::labels::{class_matrix, read_labels, MarkAt};
 use saccade::source::decode_file;
 
 use super::analyze::EngineLimits;
@@ -112,6 +112,7 @@ struct Item {
     name: String,
     line: usize,
     truth: Vec<bool>,
+    marks: Vec<MarkAt>,
 }
 
 fn progress(total: u64) -> ProgressBar {
@@ -141,6 +142,7 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
             name: l.name.clone(),
             line: l.line,
             truth,
+            marks: l.marks.clone(),
         })
         .collect();
     let missing: Vec<String> = items
@@ -197,6 +199,7 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
         let dense = engine.analyze(&frame, &exhaustive_settings, 0).with_context(at)?;
         let reference: Vec<f64> = dense.classes.iter().map(|c| c.probability).collect();
         exhaustive.add_report(&dense, &it.truth, &reference);
+        exhaustive.add_marks(&dense, &it.marks);
         bar.inc(1);
         if has_baseline {
             let t = Instant::now();
@@ -213,6 +216,7 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
                 // Distinct per (seed pass, frame); a report's seed replays it with `analyze`.
                 let r = engine.analyze(&frame, &s, seed * n + i as u64).with_context(at)?;
                 tally.add_report(&r, &it.truth, &reference);
+                tally.add_marks(&r, &it.marks);
                 bar.inc(1);
             }
         }
@@ -238,6 +242,7 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
         m.thresholds
     );
     print_table(&m.classes, &rows);
+    print_marks(&m.classes, &rows);
     if let Some(path) = &args.csv {
         std::fs::write(path, csv::to_csv(&m.classes, &rows)).with_context(|| format!("writing {}", path.display()))?;
         println!("CSV: {}", path.display());
@@ -293,10 +298,17 @@ fn print_table(classes: &[String], rows: &[Row]) {
             f
         })
         .collect();
+    table(&head, &body);
+}
+
+/// Prints aligned columns: the first three left-aligned, numbers right-aligned.
+fn table(head: &[String], body: &[Vec<String>]) {
     let widths: Vec<usize> = (0..head.len())
-        .map(|c| std::iter::once(&head).chain(&body).map(|r| r[c].chars().count()).max().unwrap_or(0))
+        .map(|c| {
+            std::iter::once(head).chain(body.iter().map(Vec::as_slice)).map(|r| r[c].chars().count()).max().unwrap_or(0)
+        })
         .collect();
-    for line in std::iter::once(&head).chain(&body) {
+    for line in std::iter::once(head).chain(body.iter().map(Vec::as_slice)) {
         let cells: Vec<String> = line
             .iter()
             .zip(&widths)
@@ -305,6 +317,33 @@ fn print_table(classes: &[String], rows: &[Row]) {
             .collect();
         println!("{}", cells.join("  ").trim_end());
     }
+}
+
+/// Where attention looked, for labels with mark positions: a second, shorter table.
+fn print_marks(classes: &[String], rows: &[Row]) {
+    if rows.iter().all(|r| r.mark_recall.is_none()) {
+        return;
+    }
+    let pct = |v: Option<f64>| v.map_or_else(|| "-".to_string(), |v| format!("{:.1}", 100.0 * v));
+    let mut head = vec!["row".to_string(), "budget ms".into(), "marks seen %".into()];
+    head.extend(classes.iter().map(|c| format!("{c} %")));
+    head.push("attention on marks".into());
+    let body: Vec<Vec<String>> = rows
+        .iter()
+        .filter(|r| r.mark_recall.is_some())
+        .map(|r| {
+            let mut f = vec![
+                r.row.name().to_string(),
+                r.budget_ms.map_or_else(|| "-".into(), |b| format!("{b}")),
+                pct(r.mark_recall),
+            ];
+            f.extend((0..classes.len()).map(|c| pct(r.mark_recall_per_class.get(c).copied().flatten())));
+            f.push(r.mark_attention.map_or_else(|| "-".into(), |v| format!("{v:.3}")));
+            f
+        })
+        .collect();
+    println!("\nlabelled marks in examined cells, and the attention their cells got (mean per frame):");
+    table(&head, &body);
 }
 
 fn print_recommendation(args: &SweepArgs, base: &Settings, rows: &[Row]) {

@@ -15,6 +15,9 @@
 //! | `p50_ms`, `p99_ms` | analysis time percentiles (nearest rank) |
 //! | `deadline_misses`, `deadline_miss_pct` | analyses past the budget (budget rows) |
 //! | `reviews` | (analysis, class) pairs with outcome `review` |
+//! | `mark_recall` | share of labelled marks whose cell was examined (labels with positions) |
+//! | `mark_attention` | mean attention on the cells holding a frame's marks |
+//! | `recall_<class>` | `mark_recall` of one class, one column per class |
 //!
 //! Scores and shares are fractions in [0, 1] written at full precision; an empty field
 //! means the column does not apply to the row.
@@ -31,6 +34,8 @@ pub fn header(classes: &[String]) -> Vec<String> {
             .iter()
             .map(|s| s.to_string()),
     );
+    h.extend(["mark_recall".to_string(), "mark_attention".to_string()]);
+    h.extend(classes.iter().map(|c| format!("recall_{c}")));
     h
 }
 
@@ -65,7 +70,10 @@ pub fn fields(r: &Row) -> Vec<String> {
         opt(r.deadline_misses),
         opt(r.deadline_miss_pct),
         opt(r.reviews),
+        opt(r.mark_recall),
+        opt(r.mark_attention),
     ]);
+    f.extend((0..r.per_class_f1.len()).map(|c| opt(r.mark_recall_per_class.get(c).copied().flatten())));
     f
 }
 

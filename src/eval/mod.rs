@@ -3,6 +3,8 @@
 
 pub mod csv;
 pub mod font;
+pub mod marks;
 pub mod metrics;
 pub mod plot;
+pub mod probe;
 pub mod rows;

@@ -7,8 +7,10 @@
 
 use serde::Serialize;
 
+use super::marks::MarkTally;
 use super::metrics;
 use crate::engine::{EstimatorKind, Outcome, Report};
+use crate::labels::MarkAt;
 use crate::sinks::record::Percentiles;
 
 /// What a row measures.
@@ -57,6 +59,12 @@ pub struct Row {
     pub deadline_miss_pct: Option<f64>,
     /// (analysis, class) pairs whose outcome was `review` (engine rows).
     pub reviews: Option<usize>,
+    /// Share of labelled marks whose cell was examined (engine rows, labels with positions).
+    pub mark_recall: Option<f64>,
+    /// The same per class, in the bundle's order.
+    pub mark_recall_per_class: Vec<Option<f64>>,
+    /// Mean attention on the cells holding a frame's marks.
+    pub mark_attention: Option<f64>,
 }
 
 /// Collects the analyses of one row.
@@ -70,6 +78,7 @@ pub struct Tally {
     times_ms: Vec<f64>,
     misses: usize,
     reviews: usize,
+    marks: Option<MarkTally>,
 }
 
 impl Tally {
@@ -84,6 +93,14 @@ impl Tally {
         self.times_ms.push(r.times_ms.total);
         self.misses += !r.budget_met as usize;
         self.reviews += r.classes.iter().filter(|c| c.outcome == Outcome::Review).count();
+    }
+
+    /// Where the analysis `r` looked against the frame's labelled `marks`.
+    pub fn add_marks(&mut self, r: &Report, marks: &[MarkAt]) {
+        let g = r.geometry.as_ref().expect("engine reports carry their geometry");
+        let names: Vec<String> = r.classes.iter().map(|c| c.name.clone()).collect();
+        let examined: Vec<usize> = r.patches.iter().map(|p| p.row * g.cols + p.col).collect();
+        self.marks.get_or_insert_with(|| MarkTally::new(names.len())).add(g, &r.attention, &examined, marks, &names);
     }
 
     /// One thumbnail-only answer, with the time it took.
@@ -130,6 +147,9 @@ impl Tally {
             deadline_misses: (row == RowKind::Budget).then_some(self.misses),
             deadline_miss_pct: (row == RowKind::Budget).then(|| 100.0 * self.misses as f64 / n.max(1) as f64),
             reviews: engine.then_some(self.reviews),
+            mark_recall: self.marks.as_ref().and_then(MarkTally::recall),
+            mark_recall_per_class: self.marks.as_ref().map(MarkTally::recall_per_class).unwrap_or_default(),
+            mark_attention: self.marks.as_ref().and_then(MarkTally::mean_mass),
         }
     }
 }
@@ -172,6 +192,9 @@ mod tests {
             deadline_misses: None,
             deadline_miss_pct: None,
             reviews: None,
+            mark_recall: None,
+            mark_recall_per_class: Vec::new(),
+            mark_attention: None,
         }
     }
 

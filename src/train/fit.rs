@@ -9,7 +9,8 @@
 //!
 //! `Psi_hat = Σ_{i ∈ top} a_i f_i + (R / m) Σ_{j=1..m} f_{c_j} · a_{c_j} / sg(a_{c_j})`,
 //!
-//! with `R` the attention mass outside the top cells and `sg` a stop-gradient. Its gradient
+//! with `R` the attention mass outside the top cells and `sg` a stop-gradient (the draws
+//! actually follow a tempered proposal, see [`TEMPER`], with matching weights). Its gradient
 //! with respect to the attention is exact for the top cells and the usual unbiased
 //! score-function estimate for the rest. Taking the top cells with certainty mirrors what
 //! priority sampling does at inference, where cells of high attention are always examined,
@@ -91,6 +92,11 @@ struct Selection {
     slopes: Vec<f64>,
 }
 
+/// Exponent of the tail's proposal: draws follow `a^TEMPER` over the remaining cells, so
+/// cells that attention ranks low (a faint mark it has not learnt yet) are examined more
+/// often than attention alone would; their weights `a / q` keep the estimate unbiased.
+const TEMPER: f64 = 0.5;
+
 /// The top cells and `tail` draws from the rest (see the module notes).
 fn select(a: &[f64], top: usize, tail: usize, rng: &mut ChaCha8Rng) -> Selection {
     let top = top.min(a.len());
@@ -101,29 +107,32 @@ fn select(a: &[f64], top: usize, tail: usize, rng: &mut ChaCha8Rng) -> Selection
     let mut cells: Vec<usize> = order[..top].to_vec();
     let mut weights: Vec<f64> = cells.iter().map(|&c| a[c]).collect();
     let mut slopes = vec![1.0; top];
-    let rest = &order[top..];
-    let mass: f64 = rest.iter().map(|&c| a[c]).sum();
-    if tail > 0 && mass > 0.0 {
+    let rest: Vec<usize> = order[top..].iter().copied().filter(|&c| a[c] > 0.0).collect();
+    if tail > 0 && !rest.is_empty() {
+        let q: Vec<f64> = rest.iter().map(|&c| a[c].powf(TEMPER)).collect();
+        let total: f64 = q.iter().sum();
         let mut cdf = Vec::with_capacity(rest.len());
         let mut acc = 0.0;
-        for &c in rest {
-            acc += a[c];
+        for v in &q {
+            acc += v;
             cdf.push(acc);
         }
         let mut counts: Vec<(usize, usize)> = Vec::new();
         for _ in 0..tail {
             let u = rng.random::<f64>() * acc;
             let j = cdf.partition_point(|&v| v <= u).min(rest.len() - 1);
-            match counts.iter_mut().find(|(c, _)| *c == rest[j]) {
+            match counts.iter_mut().find(|(k, _)| *k == j) {
                 Some((_, n)) => *n += 1,
-                None => counts.push((rest[j], 1)),
+                None => counts.push((j, 1)),
             }
         }
-        for (c, n) in counts {
-            let w = n as f64 * mass / tail as f64;
+        for (j, n) in counts {
+            let c = rest[j];
+            // E[n / (tail q_j)] = 1 with q_j the draw probability: unbiased for Σ_rest a f.
+            let w = n as f64 * a[c] / (tail as f64 * q[j] / total);
             cells.push(c);
             weights.push(w);
-            slopes.push(w / a[c].max(f64::MIN_POSITIVE));
+            slopes.push(w / a[c]);
         }
     }
     Selection { cells, weights, slopes }
@@ -132,7 +141,8 @@ fn select(a: &[f64], top: usize, tail: usize, rng: &mut ChaCha8Rng) -> Selection
 /// Priority sampling (Duffield, Lund and Thorup, J. ACM 54(6), 2007) of `k` cells with
 /// the uniforms from `rng`: the engine's default estimator, here for validation.
 fn priority(a: &[f64], k: usize, rng: &mut ChaCha8Rng) -> Selection {
-    let mut q: Vec<(usize, f64)> = a.iter().enumerate().filter(|(_, &x)| x > 0.0).map(|(i, &x)| (i, x / (1.0 - rng.random::<f64>()))).collect();
+    let mut q: Vec<(usize, f64)> =
+        a.iter().enumerate().filter(|(_, &x)| x > 0.0).map(|(i, &x)| (i, x / (1.0 - rng.random::<f64>()))).collect();
     q.sort_by(|x, y| y.1.total_cmp(&x.1).then(x.0.cmp(&y.0)));
     let k = k.min(q.len());
     let tau = q.get(k).map_or(0.0, |x| x.1);
@@ -150,7 +160,6 @@ struct Worker {
     gf: Grads,
     gh: Grads,
     scratch: Vec<f32>,
-    patches: Vec<f32>,
 }
 
 impl Worker {
@@ -163,8 +172,13 @@ impl Worker {
             gf: m.features.grads(),
             gh: m.head.grads(),
             scratch: Vec::new(),
-            patches: Vec::new(),
         }
+    }
+
+    fn zero(&mut self) {
+        self.ga.zero();
+        self.gf.zero();
+        self.gh.zero();
     }
 }
 
@@ -178,16 +192,24 @@ struct FramePass {
 }
 
 impl Sampled {
-    fn frame_forward(&self, data: &Dataset, i: usize, view: &View, pick: impl FnOnce(&[f64]) -> Selection, w: &mut Worker) -> FramePass {
-        let scores = self.attention.forward(data.thumbnail(i, view), &mut w.at);
+    fn frame_forward(
+        &self,
+        data: &Dataset,
+        i: usize,
+        view: &View,
+        pick: impl FnOnce(&[f64]) -> Selection,
+        w: &mut Worker,
+    ) -> FramePass {
+        let thumb = data.thumbnail(i, view, &mut w.scratch, w.at.recycle_input());
+        let scores = self.attention.forward(thumb, &mut w.at);
         let a = softmax(&scores.data);
         let sel = pick(&a);
         let p = data.geometry.patch as usize;
-        w.patches.clear();
+        let mut patches = w.ft.recycle_input();
         for &c in &sel.cells {
-            data.patch(i, view, c, &mut w.scratch, &mut w.patches);
+            data.patch(i, view, c, &mut w.scratch, &mut patches);
         }
-        let x = Act::new(sel.cells.len(), p, p, 3, std::mem::take(&mut w.patches));
+        let x = Act::new(sel.cells.len(), p, p, 3, patches);
         let f = self.features.forward(x, &mut w.ft).data.clone();
         let d = f.len() / sel.cells.len();
         let mut psi = vec![0f32; d];
@@ -200,13 +222,61 @@ impl Sampled {
         FramePass { logits, a, sel, f }
     }
 
+    /// The warm-up's objective on one frame: the head on each top cell's features alone,
+    /// and per class the frame's logit is the largest of them (multiple-instance learning
+    /// with max pooling: a frame carries a class when at least one patch shows it). It
+    /// teaches the feature network to see each class in a single patch before attention
+    /// weights come into play. Returns the frame's logits and loss; when `learn`, the
+    /// gradients go to features and head.
+    fn instance_step(
+        &self,
+        data: &Dataset,
+        i: usize,
+        view: &View,
+        top: usize,
+        scale: f32,
+        learn: bool,
+        w: &mut Worker,
+    ) -> (Vec<f32>, f64) {
+        let thumb = data.thumbnail(i, view, &mut w.scratch, w.at.recycle_input());
+        let a = softmax(&self.attention.forward(thumb, &mut w.at).data);
+        let sel = select(&a, top, 0, &mut ChaCha8Rng::seed_from_u64(0));
+        let p = data.geometry.patch as usize;
+        let mut patches = w.ft.recycle_input();
+        for &c in &sel.cells {
+            data.patch(i, view, c, &mut w.scratch, &mut patches);
+        }
+        let n = sel.cells.len();
+        let f = self.features.forward(Act::new(n, p, p, 3, patches), &mut w.ft).data.clone();
+        let z = self.head.forward(Act::new(n, 1, 1, f.len() / n, f), &mut w.ht).data.clone();
+        let classes = z.len() / n;
+        let best: Vec<usize> = (0..classes)
+            .map(|c| (0..n).max_by(|&x, &y| z[x * classes + c].total_cmp(&z[y * classes + c])).expect("cells"))
+            .collect();
+        let frame: Vec<f32> = best.iter().enumerate().map(|(c, &j)| z[j * classes + c]).collect();
+        let mut dframe = vec![0f32; classes];
+        let loss = bce(&frame, &data.samples[i].target, scale, &mut dframe);
+        if !learn {
+            return (frame, loss);
+        }
+        let mut dz = vec![0f32; z.len()];
+        for (c, &j) in best.iter().enumerate() {
+            dz[j * classes + c] = dframe[c];
+        }
+        let df = self.head.backward(&mut w.ht, &dz, &mut w.gh, true).expect("input gradient").data.clone();
+        self.features.backward(&mut w.ft, &df, &mut w.gf, false);
+        (frame, loss)
+    }
+
     /// Backward pass of one frame from `dz` (gradient at its logits).
     fn frame_backward(&self, pass: &FramePass, dz: &[f32], train_attention: bool, entropy: f64, w: &mut Worker) {
         let dpsi = self.head.backward(&mut w.ht, dz, &mut w.gh, true).expect("input gradient").data.clone();
         let d = dpsi.len();
         let mut df = vec![0f32; pass.f.len()];
         let mut da = Vec::with_capacity(pass.sel.cells.len());
-        for ((row, drow), (&wt, &slope)) in pass.f.chunks_exact(d).zip(df.chunks_exact_mut(d)).zip(pass.sel.weights.iter().zip(&pass.sel.slopes)) {
+        for ((row, drow), (&wt, &slope)) in
+            pass.f.chunks_exact(d).zip(df.chunks_exact_mut(d)).zip(pass.sel.weights.iter().zip(&pass.sel.slopes))
+        {
             let mut dot = 0.0f64;
             for ((g, &v), &dp) in drow.iter_mut().zip(row).zip(&dpsi) {
                 *g = (wt as f32) * dp;
@@ -240,26 +310,21 @@ impl Sampled {
     }
 }
 
-/// Splits `items` over `threads` scoped workers, each with its own state from `init`;
-/// returns the states and results in order.
+/// Splits `items` over one scoped thread per state in `states`; returns the results in
+/// order, one list per state.
 fn parallel<T: Sync, S: Send, R: Send>(
     items: &[T],
-    threads: usize,
-    init: impl Fn(usize) -> S + Sync,
+    states: &mut [S],
     work: impl Fn(&mut S, &T) -> R + Sync,
-) -> Vec<(S, Vec<R>)> {
-    let per = items.len().div_ceil(threads.max(1)).max(1);
+) -> Vec<Vec<R>> {
+    let per = items.len().div_ceil(states.len().max(1)).max(1);
     std::thread::scope(|s| {
         let handles: Vec<_> = items
             .chunks(per)
-            .enumerate()
-            .map(|(t, chunk)| {
-                let (init, work) = (&init, &work);
-                s.spawn(move || {
-                    let mut state = init(t);
-                    let out = chunk.iter().map(|it| work(&mut state, it)).collect();
-                    (state, out)
-                })
+            .zip(states.iter_mut())
+            .map(|(chunk, state)| {
+                let work = &work;
+                s.spawn(move || chunk.iter().map(|it| work(state, it)).collect::<Vec<R>>())
             })
             .collect();
         handles.into_iter().map(|h| h.join().expect("training worker panicked")).collect()
@@ -268,53 +333,75 @@ fn parallel<T: Sync, S: Send, R: Send>(
 
 /// Probabilities and mean loss of the sampled model on `frames` with the engine's
 /// estimator: priority sampling of `k` cells, with draws fixed by `seed` and the frame.
-pub fn validate(m: &Sampled, data: &Dataset, frames: &[usize], k: usize, seed: u64, threads: usize) -> (Vec<Vec<f64>>, f64) {
-    let out = parallel(
-        frames,
-        threads,
-        |_| Worker::new(m),
-        |w, &i| {
+pub fn validate(
+    m: &Sampled,
+    data: &Dataset,
+    frames: &[usize],
+    k: usize,
+    seed: u64,
+    threads: usize,
+) -> (Vec<Vec<f64>>, f64) {
+    validate_stage(m, Stage::EndToEnd, data, frames, k, seed, threads)
+}
+
+/// Validation as a stage sees it: the warm-up's single-patch objective over the top `k`
+/// cells, or (end to end) priority sampling of `k` cells as the engine does it.
+fn validate_stage(
+    m: &Sampled,
+    stage: Stage,
+    data: &Dataset,
+    frames: &[usize],
+    k: usize,
+    seed: u64,
+    threads: usize,
+) -> (Vec<Vec<f64>>, f64) {
+    let mut workers: Vec<Worker> = (0..threads.max(1)).map(|_| Worker::new(m)).collect();
+    let plain = View::plain(&data.norm);
+    let out = parallel(frames, &mut workers, |w, &i| {
+        let (logits, loss) = if stage == Stage::Warmup {
+            m.instance_step(data, i, &plain, k, 1.0, false, w)
+        } else {
             let mut rng = ChaCha8Rng::seed_from_u64(seed ^ (i as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15));
-            let pass = m.frame_forward(data, i, &View::plain(&data.norm), |a| priority(a, k, &mut rng), w);
+            let pass = m.frame_forward(data, i, &plain, |a| priority(a, k, &mut rng), w);
             let mut dz = vec![0f32; pass.logits.len()];
             let loss = bce(&pass.logits, &data.samples[i].target, 1.0, &mut dz);
-            (pass.logits.iter().map(|&z| sigmoid(z) as f64).collect::<Vec<f64>>(), loss)
-        },
-    );
-    let results: Vec<(Vec<f64>, f64)> = out.into_iter().flat_map(|(_, r)| r).collect();
-    let loss = results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
+            (pass.logits, loss)
+        };
+        (logits.iter().map(|&z| sigmoid(z) as f64).collect::<Vec<f64>>(), loss)
+    });
+    let results: Vec<(Vec<f64>, f64)> = out.into_iter().flatten().collect();
+    let loss =
+        results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
     (results.into_iter().map(|r| r.0).collect(), loss)
 }
 
 /// Probabilities and mean loss of the thumbnail-only network on `frames`.
 pub fn validate_baseline(b: &Net, data: &Dataset, frames: &[usize], threads: usize) -> (Vec<Vec<f64>>, f64) {
-    let out = parallel(
-        frames,
-        threads,
-        |_| (),
-        |_, &i| {
-            let z = b.infer(data.thumbnail(i, &View::plain(&data.norm))).data;
-            let mut dz = vec![0f32; z.len()];
-            let loss = bce(&z, &data.samples[i].target, 1.0, &mut dz);
-            (z.iter().map(|&v| sigmoid(v) as f64).collect::<Vec<f64>>(), loss)
-        },
-    );
-    let results: Vec<(Vec<f64>, f64)> = out.into_iter().flat_map(|(_, r)| r).collect();
-    let loss = results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
+    let mut scratch: Vec<Vec<f32>> = vec![Vec::new(); threads.max(1)];
+    let out = parallel(frames, &mut scratch, |scratch, &i| {
+        let z = b.infer(data.thumbnail(i, &View::plain(&data.norm), scratch, Vec::new())).data;
+        let mut dz = vec![0f32; z.len()];
+        let loss = bce(&z, &data.samples[i].target, 1.0, &mut dz);
+        (z.iter().map(|&v| sigmoid(v) as f64).collect::<Vec<f64>>(), loss)
+    });
+    let results: Vec<(Vec<f64>, f64)> = out.into_iter().flatten().collect();
+    let loss =
+        results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
     (results.into_iter().map(|r| r.0).collect(), loss)
 }
 
 /// Macro F1 at probability 0.5.
 pub fn macro_f1(probs: &[Vec<f64>], data: &Dataset, frames: &[usize]) -> f64 {
     let pred: Vec<Vec<bool>> = probs.iter().map(|p| p.iter().map(|&v| v >= 0.5).collect()).collect();
-    let truth: Vec<Vec<bool>> = frames.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
+    let truth: Vec<Vec<bool>> =
+        frames.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
     crate::eval::metrics::f1(&truth, &pred).macro_f1
 }
 
 /// What a stage trains.
 #[derive(Clone, Copy, PartialEq, Eq)]
 pub enum Stage {
-    /// Feature network and head, attention held.
+    /// Feature network and head on single patches, attention held (see `instance_step`).
     Warmup,
     /// All three networks.
     EndToEnd,
@@ -330,7 +417,9 @@ impl Stage {
 }
 
 fn bar(bars: &MultiProgress, steps: usize, prefix: String) -> ProgressBar {
-    let style = ProgressStyle::with_template("{prefix} [{bar:30}] {pos}/{len} {msg} ({eta})").expect("valid template").progress_chars("=> ");
+    let style = ProgressStyle::with_template("{prefix} [{bar:30}] {pos}/{len} {msg} ({eta})")
+        .expect("valid template")
+        .progress_chars("=> ");
     let b = bars.add(ProgressBar::new(steps as u64)).with_style(style);
     b.set_prefix(prefix);
     b
@@ -395,13 +484,15 @@ pub fn fit_sampled(
         return;
     }
     let seed = rng.random::<u64>();
-    let (_, entry_loss) = validate(m, data, val, o.val_patches, seed, o.threads);
+    let k = if stage == Stage::Warmup { o.top } else { o.val_patches };
+    let (_, entry_loss) = validate_stage(m, stage, data, val, k, seed, o.threads);
     log::info!("{}: validation loss {entry_loss:.4} at the start", stage.name());
     let mut keeper = Keeper::new(m, entry_loss);
     let train_attention = stage == Stage::EndToEnd;
     let mut opt = [AdamW::new(&m.attention, 1e-4), AdamW::new(&m.features, 1e-4), AdamW::new(&m.head, 1e-4)];
     let mut order = train.to_vec();
     let steps = order.len().div_ceil(o.batch);
+    let mut workers: Vec<Worker> = (0..o.threads.max(1)).map(|_| Worker::new(m)).collect();
     for epoch in 1..=epochs {
         let t0 = Instant::now();
         let lr = cosine(o.learning_rate, epoch, epochs) as f32;
@@ -409,24 +500,24 @@ pub fn fit_sampled(
         let b = bar(bars, steps, format!("{} epoch {epoch}/{epochs}", stage.name()));
         let mut total = 0.0;
         for chunk in order.chunks(o.batch) {
-            let jobs: Vec<(usize, View, u64)> = chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng), rng.random())).collect();
+            let jobs: Vec<(usize, View, u64)> =
+                chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng), rng.random())).collect();
             let scale = (chunk.len() * data.samples[0].target.len()) as f32;
             let model = &*m;
-            let done = parallel(
-                &jobs,
-                o.threads,
-                |_| Worker::new(model),
-                |w, (i, view, s)| {
-                    let mut r = ChaCha8Rng::seed_from_u64(*s);
-                    let pass = model.frame_forward(data, *i, view, |a| select(a, o.top, o.tail, &mut r), w);
-                    let mut dz = vec![0f32; pass.logits.len()];
-                    let loss = bce(&pass.logits, &data.samples[*i].target, scale, &mut dz);
-                    model.frame_backward(&pass, &dz, train_attention, o.entropy / chunk.len() as f64, w);
-                    loss
-                },
-            );
+            workers.iter_mut().for_each(Worker::zero);
+            let done = parallel(&jobs, &mut workers, |w, (i, view, s)| {
+                if stage == Stage::Warmup {
+                    return model.instance_step(data, *i, view, o.top, scale, true, w).1;
+                }
+                let mut r = ChaCha8Rng::seed_from_u64(*s);
+                let pass = model.frame_forward(data, *i, view, |a| select(a, o.top, o.tail, &mut r), w);
+                let mut dz = vec![0f32; pass.logits.len()];
+                let loss = bce(&pass.logits, &data.samples[*i].target, scale, &mut dz);
+                model.frame_backward(&pass, &dz, train_attention, o.entropy / chunk.len() as f64, w);
+                loss
+            });
             let (mut ga, mut gf, mut gh) = (m.attention.grads(), m.features.grads(), m.head.grads());
-            for (w, losses) in &done {
+            for (w, losses) in workers.iter().zip(&done) {
                 ga.add(&w.ga);
                 gf.add(&w.gf);
                 gh.add(&w.gh);
@@ -441,10 +532,13 @@ pub fn fit_sampled(
             opt[1].step(&mut m.features, &gf, lr);
             opt[2].step(&mut m.head, &gh, lr);
             b.inc(1);
-            b.set_message(format!("loss {:.4}", total / (b.position() as f64 * o.batch as f64 * data.samples[0].target.len() as f64)));
+            b.set_message(format!(
+                "loss {:.4}",
+                total / (b.position() as f64 * o.batch as f64 * data.samples[0].target.len() as f64)
+            ));
         }
         b.finish_and_clear();
-        let (probs, val_loss) = validate(m, data, val, o.val_patches, seed, o.threads);
+        let (probs, val_loss) = validate_stage(m, stage, data, val, k, seed, o.threads);
         let entry = EpochLog {
             model: stage.name(),
             epoch,
@@ -488,6 +582,8 @@ pub fn fit_baseline(
     let mut opt = AdamW::new(net, 1e-4);
     let mut order = train.to_vec();
     let steps = order.len().div_ceil(o.batch);
+    let mut workers: Vec<(Tape, Grads, Vec<f32>)> =
+        (0..o.threads.max(1)).map(|_| (Tape::default(), net.grads(), Vec::new())).collect();
     for epoch in 1..=epochs {
         let t0 = Instant::now();
         let lr = cosine(o.learning_rate, epoch, epochs) as f32;
@@ -495,23 +591,21 @@ pub fn fit_baseline(
         let b = bar(bars, steps, format!("baseline epoch {epoch}/{epochs}"));
         let mut total = 0.0;
         for chunk in order.chunks(o.batch) {
-            let jobs: Vec<(usize, View)> = chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng))).collect();
+            let jobs: Vec<(usize, View)> =
+                chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng))).collect();
             let scale = (chunk.len() * data.samples[0].target.len()) as f32;
             let model = &*net;
-            let done = parallel(
-                &jobs,
-                o.threads,
-                |_| (Tape::default(), model.grads()),
-                |(tape, g), (i, view)| {
-                    let z = model.forward(data.thumbnail(*i, view), tape).data.clone();
-                    let mut dz = vec![0f32; z.len()];
-                    let loss = bce(&z, &data.samples[*i].target, scale, &mut dz);
-                    model.backward(tape, &dz, g, false);
-                    loss
-                },
-            );
+            workers.iter_mut().for_each(|w| w.1.zero());
+            let done = parallel(&jobs, &mut workers, |(tape, g, scratch), (i, view)| {
+                let buf = tape.recycle_input();
+                let z = model.forward(data.thumbnail(*i, view, scratch, buf), tape).data.clone();
+                let mut dz = vec![0f32; z.len()];
+                let loss = bce(&z, &data.samples[*i].target, scale, &mut dz);
+                model.backward(tape, &dz, g, false);
+                loss
+            });
             let mut g = net.grads();
-            for ((_, gw), losses) in &done {
+            for ((_, gw, _), losses) in workers.iter().zip(&done) {
                 g.add(gw);
                 total += losses.iter().sum::<f64>() * scale as f64;
             }
@@ -529,7 +623,11 @@ pub fn fit_baseline(
             val_macro_f1: macro_f1(&probs, data, val),
             seconds: t0.elapsed().as_secs_f64(),
         };
-        log::info!("baseline epoch {epoch}: train loss {:.4}, validation loss {val_loss:.4}, validation macro F1 {:.3}", entry.train_loss, entry.val_macro_f1);
+        log::info!(
+            "baseline epoch {epoch}: train loss {:.4}, validation loss {val_loss:.4}, validation macro F1 {:.3}",
+            entry.train_loss,
+            entry.val_macro_f1
+        );
         log.push(entry);
         if keeper.epoch(net, val_loss, o.patience) {
             break;

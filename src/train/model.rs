@@ -7,7 +7,7 @@
 
 use rand_chacha::ChaCha8Rng;
 
-use super::nn::{small, Conv, Layer, Net};
+use super::nn::{Conv, Layer, Net};
 use crate::onnx::writer::{Dim, GraphWriter};
 
 const PRODUCER: &str = "saccade-train";
@@ -15,12 +15,11 @@ const PRODUCER: &str = "saccade-train";
 /// Channel widths of the networks.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Arch {
-    /// Attention: full thumbnail resolution, after each halving, at the cell grid.
+    /// Attention: the first layer (at half the thumbnail's resolution), the layers before
+    /// each further halving, the layer at the cell grid.
     pub attention: [usize; 3],
-    /// Feature network: the 3×3 layers at 1, 1/2, 1/4 and 1/8 of the patch side; the last
-    /// one's width is the feature dimension.
+    /// Feature network: the 3×3 layers at 1/2, 1/2, 1/4 and 1/8 of the patch side.
     pub features: [usize; 4],
-    pub head_hidden: usize,
     /// Thumbnail-only comparison network.
     pub baseline: [usize; 4],
 }
@@ -29,16 +28,12 @@ impl Arch {
     pub const PRESETS: [&'static str; 2] = ["standard", "small"];
 
     pub fn preset(name: &str) -> Option<Self> {
-        let standard = Self { attention: [8, 16, 16], features: [8, 16, 32, 32], head_hidden: 32, baseline: [12, 16, 32, 32] };
+        let standard = Self { attention: [8, 8, 16], features: [16, 16, 32, 32], baseline: [12, 16, 32, 32] };
         match name {
             "standard" => Some(standard),
             "small" => Some(Self { features: [8, 12, 24, 24], ..standard }),
             _ => None,
         }
-    }
-
-    pub fn feature_dim(&self) -> usize {
-        self.features[3]
     }
 }
 
@@ -52,80 +47,118 @@ fn conv3(rng: &mut ChaCha8Rng, cin: usize, cout: usize) -> Layer {
     Layer::Conv(Conv::new(rng, cin, cout, 3, 1, 1))
 }
 
+/// Slope of the initial attention score above its cap, relative to below it.
+pub const ABOVE_CAP: f32 = 0.25;
+
 /// Halvings from the thumbnail to the cell grid: `stride = 2^n`, `n ≥ 1`.
 pub fn halvings(stride: u32) -> Option<usize> {
     (stride >= 2 && stride.is_power_of_two()).then(|| stride.trailing_zeros() as usize)
 }
 
-/// Thumbnail → one score per cell. A 3×3 layer (edge-padded) at the thumbnail's own resolution (where a
-/// mark of a few frame pixels is still a distinct thumbnail pixel), then max pools with a
-/// 3×3 layer after each, down to the cell grid, and a 1×1 layer to the score.
+/// Thumbnail → one score per cell. A 4×4 layer at stride 2 on the edge-padded
+/// thumbnail (each output sees the 3×3 neighbourhoods of all four thumbnail pixels of
+/// its 2×2 block, so a mark of a few frame pixels, one thumbnail pixel, is not averaged
+/// away), then a 3×3 layer and a max pool per further halving down to the cell grid, a
+/// 3×3 layer there and a 1×1 layer to the score.
 ///
-/// It starts as a capped local-contrast detector: channels 0 and 1 of the first layer are
-/// the grey Laplacian of either sign, the later layers carry their sum through, and the
-/// score is `gain · min(|Laplacian|, cap)` at the cell's strongest point. The cap keeps
-/// large marks from drowning small ones in the softmax, so the first steps already look
-/// at every kind of mark; training then learns which of them matter.
+/// It starts as a capped local-contrast detector: the first layer's channels 0–3 are the
+/// grey Laplacian at the block's four pixels and channels 4–7 its negative, the next
+/// layer sums them (the block's absolute Laplacian), and the score is
+/// `gain · contrast` at the cell's strongest block, with a quarter of the slope above `cap`.
+/// The bend keeps large marks from drowning small ones in the softmax, so the first steps
+/// already look at every kind of mark; training then learns which of them matter. Needs at least 8 channels in the
+/// first layer and 2 in the others.
 pub fn attention(rng: &mut ChaCha8Rng, a: &Arch, stride: u32, gain: f32, cap: f32) -> Net {
     let n = halvings(stride).expect("cell stride is a power of two");
     let [c1, c2, c3] = a.attention;
-    let mut layers = vec![Layer::PadEdge(1), Layer::Conv(Conv::new(rng, 3, c1, 3, 1, 0)), Layer::Relu];
+    assert!(
+        c1 >= 8 && c2 >= 2 && c3 >= 2,
+        "attention widths {:?} below the 8, 2, 2 the initial form needs",
+        a.attention
+    );
+    let mut layers = vec![Layer::PadEdge(1), Layer::Conv(Conv::new(rng, 3, c1, 4, 2, 0)), Layer::Relu];
     let mut c = c1;
-    for _ in 0..n {
-        layers.extend([Layer::MaxPool(2), conv3(rng, c, c2), Layer::Relu]);
+    for _ in 1..n {
+        layers.extend([conv3(rng, c, c2), Layer::Relu, Layer::MaxPool(2)]);
         c = c2;
     }
     layers.extend([conv3(rng, c, c3), Layer::Relu, Layer::Conv(Conv::new(rng, c3, 1, 1, 1, 0))]);
     let mut net = Net::new(layers);
     let last = net.convs_mut().count() - 1;
     for (j, conv) in net.convs_mut().enumerate() {
-        let (cin, cout) = (conv.cin, conv.cout);
-        let at = |tap: usize, ci: usize, co: usize| (tap * cin + ci) * cout + co;
+        let (k, cin, cout) = (conv.k, conv.cin, conv.cout);
+        let at = |ky: usize, kx: usize, ci: usize, co: usize| ((ky * k + kx) * cin + ci) * cout + co;
         if j == 0 {
-            for tap in 0..9 {
-                let lap = if tap == 4 { 1.0 } else { -1.0 / 8.0 };
-                for ch in 0..3 {
-                    conv.w[at(tap, ch, 0)] = lap / 3.0;
-                    conv.w[at(tap, ch, 1)] = -lap / 3.0;
+            for co in 0..8 {
+                for w in (0..k * k * cin).map(|r| r * cout + co) {
+                    conv.w[w] = 0.0;
                 }
             }
-        } else if j < last {
-            // Outputs 0 (and 1 in the last 3×3 layer) read only input channels 0 (and 1).
-            let keep = if j + 1 == last { 2 } else { 1 };
-            for tap in 0..9 {
-                for ci in 0..cin {
-                    for co in 0..keep {
-                        conv.w[at(tap, ci, co)] = 0.0;
+            for (sub, (sy, sx)) in [(0, 0), (0, 1), (1, 0), (1, 1)].into_iter().enumerate() {
+                for dy in 0..3 {
+                    for dx in 0..3 {
+                        let lap = if (dy, dx) == (1, 1) { 1.0 } else { -1.0 / 8.0 };
+                        for ch in 0..3 {
+                            conv.w[at(sy + dy, sx + dx, ch, sub)] = lap / 3.0;
+                            conv.w[at(sy + dy, sx + dx, ch, 4 + sub)] = -lap / 3.0;
+                        }
                     }
                 }
             }
-            let sum_in = if j == 1 { 2 } else { 1 };
+        } else if j < last {
+            // Output 0 (and 1 in the last 3×3 layer) reads only the contrast channels.
+            let keep = if j + 1 == last { 2 } else { 1 };
+            for r in 0..k * k * cin {
+                for co in 0..keep {
+                    conv.w[r * cout + co] = 0.0;
+                }
+            }
+            let inputs = if j == 1 { 8 } else { 1 };
             for co in 0..keep {
-                for ci in 0..sum_in {
-                    conv.w[at(4, ci, co)] = 1.0;
+                for ci in 0..inputs {
+                    conv.w[at(1, 1, ci, co)] = 1.0;
                 }
             }
             if keep == 2 {
                 conv.b[1] = -cap;
             }
         } else {
+            // Slope 1 below the cap, ABOVE_CAP above it: the order of marks is kept (a hard
+            // cap would tie every textured cell with every mark), their range compressed.
             conv.w = vec![0.0; cin];
             conv.w[0] = gain;
-            conv.w[1] = -gain;
+            conv.w[1] = -gain * (1.0 - ABOVE_CAP);
         }
     }
     net
 }
 
-/// Patch → feature vector: four 3×3 layers with a 2×2 max pool between each, all
-/// followed by ReLU, and a global max, so features are non-negative evidence that
-/// averages sensibly under the attention weights. The patch side must be a multiple of 8.
-pub fn features(rng: &mut ChaCha8Rng, a: &Arch) -> Net {
+/// How far apart two patches' evidence may be: per-class logits are clamped to
+/// `±EVIDENCE_LIMIT` before the exponential.
+pub const EVIDENCE_LIMIT: f32 = 30.0;
+/// Initial sharpness of the evidence: `f = exp(g)` with `g` about this many times the
+/// patch's class logit (see [`head`]).
+pub const SHARPNESS: f32 = 4.0;
+
+/// Patch → evidence, one value per class: a 3×3 layer at stride 2 (it still sees every
+/// pixel, so a mark of one or two pixels is not lost, at a quarter of the cost of stride
+/// 1), three 3×3 layers with a 2×2 max pool before the last two, all followed by ReLU, a
+/// global max, a dense layer to one score `g_c` per class, and `f_c = exp(g_c)`.
+///
+/// Why the exponential: the engine reports `Psi = Σ_i a_i f_i`, an attention-weighted
+/// mean. With `f = exp(g)`, `ln Psi_c = ln Σ_i a_i e^{g_ic}` is a log-sum-exp: close to the
+/// largest `g_ic` among the cells attention looked at, lowered only by the log of that
+/// cell's attention, and `g` is free to make that term small. A mean of plain
+/// non-negative features would instead dilute a mark by every look-alike and every cell
+/// of ground that shares the attention, which is what made small defects go missing.
+/// The patch side must be a multiple of 8.
+pub fn features(rng: &mut ChaCha8Rng, a: &Arch, classes: usize) -> Net {
     let [f1, f2, f3, f4] = a.features;
+    let mut score = Conv::dense(rng, f4, classes);
+    score.w.iter_mut().for_each(|w| *w *= SHARPNESS);
     Net::new(vec![
-        conv3(rng, 3, f1),
+        Layer::Conv(Conv::new(rng, 3, f1, 3, 2, 1)),
         Layer::Relu,
-        Layer::MaxPool(2),
         conv3(rng, f1, f2),
         Layer::Relu,
         Layer::MaxPool(2),
@@ -135,17 +168,33 @@ pub fn features(rng: &mut ChaCha8Rng, a: &Arch) -> Net {
         conv3(rng, f3, f4),
         Layer::Relu,
         Layer::GlobalMax,
+        Layer::Conv(score),
+        Layer::ClampExp(EVIDENCE_LIMIT),
     ])
 }
 
-/// Offset inside the head's log: evidence well below it counts as none.
-pub const HEAD_EPS: f32 = 1e-3;
+/// Offset inside the head's log, below `exp(-EVIDENCE_LIMIT)`'s order: evidence below it
+/// counts as none, and Gaussian samples of Psi that fall below zero stay finite.
+pub const HEAD_EPS: f32 = 1e-12;
 
-/// Psi → class logits: `ln(Psi + eps)`, one hidden ReLU layer, one logit per class.
-pub fn head(rng: &mut ChaCha8Rng, a: &Arch, classes: usize) -> Net {
-    let mut first = Conv::dense(rng, a.feature_dim(), a.head_hidden);
-    first.b = small(rng, a.head_hidden, 0.1);
-    Net::new(vec![Layer::LogRelu(HEAD_EPS), Layer::Conv(first), Layer::Relu, Layer::Conv(Conv::dense(rng, a.head_hidden, classes))])
+/// Psi → class logits: `ln(Psi + eps)` and a dense layer, starting as `ln(Psi_c) / SHARPNESS`
+/// per class. On one patch's evidence alone it gives that patch's class logits, which is
+/// how the warm-up trains it and how a finding is placed.
+pub fn head(_rng: &mut ChaCha8Rng, classes: usize) -> Net {
+    let mut d = Conv {
+        k: 1,
+        stride: 1,
+        pad: 0,
+        cin: classes,
+        cout: classes,
+        dense: true,
+        w: vec![0.0; classes * classes],
+        b: vec![0.0; classes],
+    };
+    for c in 0..classes {
+        d.w[c * classes + c] = 1.0 / SHARPNESS;
+    }
+    Net::new(vec![Layer::LogRelu(HEAD_EPS), Layer::Conv(d)])
 }
 
 /// The thumbnail-only comparison: a small CNN on the same thumbnail, trained with the
@@ -224,13 +273,15 @@ mod tests {
         let mut x = vec![0.1f32; h * w * 3];
         let dot = |x: &mut Vec<f32>, y: usize, xx: usize, v: f32| x[(y * w + xx) * 3..][..3].fill(v);
         dot(&mut x, 2, 2, 0.1 + 0.05); // faint: below the cap
-        dot(&mut x, 9, 13, 0.1 + 1.0); // strong: capped
+        dot(&mut x, 9, 13, 0.1 + 1.0); // strong: above the bend
         let s = net.infer(Act::new(1, h, w, 3, x)).data;
         assert_eq!(s.len(), 16);
-        // The dot's Laplacian (0.05) plus the strongest of its ring of negative Laplacian
-        // (0.05 / 8), each channel pooled on its own.
-        assert!((s[0] - gain * (0.05 + 0.05 / 8.0)).abs() < 1e-4, "faint dot scores {}", s[0]);
-        assert!((s[2 * 4 + 3] - gain * cap).abs() < 1e-4, "strong dot scores {}", s[11]);
+        // The dot's Laplacian, plus a ring of its negative (an eighth) at the three other
+        // pixels of its 2×2 block.
+        assert!((s[0] - gain * 0.05 * (1.0 + 3.0 / 8.0)).abs() < 1e-4, "faint dot scores {}", s[0]);
+        let strong = 1.0 * (1.0 + 3.0 / 8.0);
+        let want = gain * (cap + ABOVE_CAP * (strong - cap));
+        assert!((s[2 * 4 + 3] - want).abs() < 1e-3, "strong dot scores {} (want {want})", s[11]);
         assert!(s.iter().enumerate().filter(|(i, _)| ![0, 11].contains(i)).all(|(_, v)| v.abs() < 1e-4), "{s:?}");
     }
 }

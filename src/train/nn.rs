@@ -183,7 +183,22 @@ impl Conv {
         let (m, kk, n) = (dy.n * oh * ow, self.k * self.k * self.cin, self.cout);
         // SAFETY: as in forward; aᵀ is a with its strides swapped.
         unsafe {
-            sgemm(kk, m, n, 1.0, a.as_ptr(), 1, kk as isize, dy.data.as_ptr(), n as isize, 1, 1.0, gw.as_mut_ptr(), n as isize, 1);
+            sgemm(
+                kk,
+                m,
+                n,
+                1.0,
+                a.as_ptr(),
+                1,
+                kk as isize,
+                dy.data.as_ptr(),
+                n as isize,
+                1,
+                1.0,
+                gw.as_mut_ptr(),
+                n as isize,
+                1,
+            );
         }
         for row in dy.data.chunks_exact(n) {
             for (g, v) in gb.iter_mut().zip(row) {
@@ -195,7 +210,22 @@ impl Conv {
         target.resize(m * kk, 0.0);
         // SAFETY: dy is m×n, Wᵀ is n×kk (W with its strides swapped), the target m×kk.
         unsafe {
-            sgemm(m, n, kk, 1.0, dy.data.as_ptr(), n as isize, 1, self.w.as_ptr(), 1, n as isize, 0.0, target.as_mut_ptr(), kk as isize, 1);
+            sgemm(
+                m,
+                n,
+                kk,
+                1.0,
+                dy.data.as_ptr(),
+                n as isize,
+                1,
+                self.w.as_ptr(),
+                1,
+                n as isize,
+                0.0,
+                target.as_mut_ptr(),
+                kk as isize,
+                1,
+            );
         }
         if !self.direct() {
             self.col2im(dcols, oh, ow, dx);
@@ -229,6 +259,10 @@ pub enum Layer {
     MaxPool(usize),
     /// `[n, h, w, c]` → `[n, 1, 1, c]`.
     GlobalMax,
+    /// `exp(clamp(x, -limit, limit))`: turns per-patch class logits into positive evidence
+    /// whose attention-weighted mean behaves like a maximum over patches (see
+    /// `model::features`); the clamp keeps it finite in f32.
+    ClampExp(f32),
     /// Pads by `p` on each side repeating the edge values: before a network's first
     /// convolution on a whole thumbnail, so that the frame's border is not an edge.
     PadEdge(usize),
@@ -250,6 +284,14 @@ pub struct Tape {
 }
 
 impl Tape {
+    /// The storage of the last input, emptied, to fill with the next one (saves
+    /// allocating a large buffer per step).
+    pub fn recycle_input(&mut self) -> Vec<f32> {
+        let mut v = self.acts.first_mut().map(|a| std::mem::take(&mut a.data)).unwrap_or_default();
+        v.clear();
+        v
+    }
+
     /// The network's output after [`Net::forward`].
     pub fn output(&self) -> &Act {
         self.acts.last().expect("forward ran")
@@ -345,6 +387,12 @@ impl Net {
                 Layer::MaxPool(k) => max_pool(x, *k, *k, y, &mut tape.argmax[i]),
                 Layer::GlobalMax => max_pool(x, x.h, x.w, y, &mut tape.argmax[i]),
                 Layer::PadEdge(p) => pad_edge(x, *p, y, &mut tape.argmax[i]),
+                Layer::ClampExp(limit) => {
+                    y.reset(x.n, x.h, x.w, x.c);
+                    for (o, &v) in y.data.iter_mut().zip(&x.data) {
+                        *o = v.clamp(-limit, *limit).exp();
+                    }
+                }
             }
         }
         &tape.acts[n]
@@ -383,6 +431,12 @@ impl Net {
                     Layer::LogRelu(eps) => {
                         for ((d, &g), &v) in next.data.iter_mut().zip(&cur.data).zip(&x.data) {
                             *d = if v > 0.0 { g / (v + eps) } else { 0.0 };
+                        }
+                    }
+                    Layer::ClampExp(limit) => {
+                        let y = &tape.acts[i + 1].data;
+                        for (((d, &g), &v), &e) in next.data.iter_mut().zip(&cur.data).zip(&x.data).zip(y) {
+                            *d = if v.abs() < *limit { g * e } else { 0.0 };
                         }
                     }
                     Layer::MaxPool(_) | Layer::GlobalMax | Layer::PadEdge(_) => {
@@ -434,6 +488,12 @@ impl Net {
                 Layer::MaxPool(k) => g.max_pool_ceil(&h, *k),
                 Layer::GlobalMax => g.global_pool("GlobalMaxPool", &h),
                 Layer::PadEdge(p) => g.pad_edge(&h, *p as i64),
+                Layer::ClampExp(limit) => {
+                    let lo = g.constant("clip_min", &[], &[-limit]);
+                    let hi = g.constant("clip_max", &[], &[*limit]);
+                    let c = g.node("Clip", &[&h, &lo, &hi], &[]);
+                    g.unary("Exp", &c)
+                }
             };
         }
         h
@@ -449,18 +509,20 @@ fn max_pool(x: &Act, kh: usize, kw: usize, y: &mut Act, argmax: &mut Vec<u32>) {
         for oy in 0..oh {
             for ox in 0..ow {
                 let o = ((b * oh + oy) * ow + ox) * c;
+                let (best, at) = (&mut y.data[o..o + c], &mut argmax[o..o + c]);
                 let first = ((b * x.h + oy * kh) * x.w + ox * kw) * c;
-                for ch in 0..c {
-                    y.data[o + ch] = x.data[first + ch];
-                    argmax[o + ch] = (first + ch) as u32;
+                best.copy_from_slice(&x.data[first..first + c]);
+                for (a, i) in at.iter_mut().zip(first as u32..) {
+                    *a = i;
                 }
                 for dy in 0..kh {
                     for dx in 0..kw {
-                        let at = ((b * x.h + oy * kh + dy) * x.w + ox * kw + dx) * c;
-                        for ch in 0..c {
-                            if x.data[at + ch] > y.data[o + ch] {
-                                y.data[o + ch] = x.data[at + ch];
-                                argmax[o + ch] = (at + ch) as u32;
+                        let start = ((b * x.h + oy * kh + dy) * x.w + ox * kw + dx) * c;
+                        let src = &x.data[start..start + c];
+                        for (ch, ((m, a), &v)) in best.iter_mut().zip(at.iter_mut()).zip(src).enumerate() {
+                            if v > *m {
+                                *m = v;
+                                *a = (start + ch) as u32;
                             }
                         }
                     }
@@ -560,7 +622,9 @@ mod tests {
         let mut rng = ChaCha8Rng::seed_from_u64(5);
         let out = net.infer(x.clone());
         let r: Vec<f32> = (0..out.data.len()).map(|_| rng.random_range(-1.0f32..1.0)).collect();
-        let loss = |net: &Net, x: &Act| -> f64 { net.infer(x.clone()).data.iter().zip(&r).map(|(a, b)| (*a as f64) * (*b as f64)).sum() };
+        let loss = |net: &Net, x: &Act| -> f64 {
+            net.infer(x.clone()).data.iter().zip(&r).map(|(a, b)| (*a as f64) * (*b as f64)).sum()
+        };
         let mut tape = Tape::default();
         net.forward(x.clone(), &mut tape);
         let mut grads = net.grads();
@@ -600,7 +664,9 @@ mod tests {
 
     fn input(rng: &mut ChaCha8Rng, n: usize, h: usize, w: usize, c: usize) -> Act {
         // Values away from 0 and from each other, so ReLU kinks and max ties are not hit.
-        let data = (0..n * h * w * c).map(|_| rng.random_range(0.2f32..1.0) * if rng.random_bool(0.5) { 1.0 } else { -1.0 }).collect();
+        let data = (0..n * h * w * c)
+            .map(|_| rng.random_range(0.2f32..1.0) * if rng.random_bool(0.5) { 1.0 } else { -1.0 })
+            .collect();
         Act::new(n, h, w, c, data)
     }
 
@@ -630,6 +696,7 @@ mod tests {
             Layer::GlobalMax,
             Layer::LogRelu(0.5),
             Layer::Conv(Conv::dense(&mut rng, 4, 3)),
+            Layer::ClampExp(1.5),
         ]);
         for c in net.convs_mut() {
             c.b = small(&mut rng, c.cout, 0.3).iter().map(|v| v + 0.4).collect();
