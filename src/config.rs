@@ -7,8 +7,9 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use crate::engine::{Mask, Rect, Settings};
-use crate::source::DEFAULT_MAX_PIXELS;
+use crate::engine::{Bundle, Mask, MaskConfig, Settings};
+use crate::sinks::{EvidenceConfig, LogConfig};
+use crate::source::{AfterUse, SourceConfig, DEFAULT_MAX_PIXELS};
 
 #[derive(Clone, Debug, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -30,213 +31,6 @@ pub struct Config {
 
 fn default_max_pixels() -> u64 {
     DEFAULT_MAX_PIXELS
-}
-
-/// What a source does when analysis is busy and a new frame arrives.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "snake_case")]
-pub enum Overload {
-    /// Keep only the newest frame and count the one it replaces as dropped.
-    DropOldest,
-    /// Wait until analysis takes the frame: nothing is skipped.
-    Wait,
-}
-
-/// What happens to a file from a watched folder once it has been taken.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "snake_case")]
-pub enum AfterUse {
-    Keep,
-    Delete,
-    Move,
-}
-
-#[derive(Clone, Debug, Serialize, Deserialize)]
-#[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
-pub enum SourceConfig {
-    /// A V4L2 camera.
-    Camera {
-        #[serde(default = "default_device")]
-        device: String,
-        width: u32,
-        height: u32,
-        #[serde(default = "default_fps")]
-        fps: u32,
-        /// Pixel formats in order of preference: "mjpeg", "yuyv", "nv12".
-        #[serde(default = "default_formats")]
-        formats: Vec<String>,
-    },
-    /// A folder into which another program drops frames.
-    Folder {
-        path: PathBuf,
-        #[serde(default = "default_after")]
-        after: AfterUse,
-        /// Destination for `after = "move"`.
-        move_to: Option<PathBuf>,
-        /// A file is taken once its size and modification time have not changed for this long.
-        #[serde(default = "default_stable_ms")]
-        stable_ms: u64,
-        #[serde(default = "default_poll_ms")]
-        poll_ms: u64,
-        #[serde(default = "default_drop")]
-        overload: Overload,
-    },
-    /// A list of files or glob patterns replayed in order.
-    Files {
-        paths: Vec<String>,
-        /// Frames per second; 0 replays as fast as analysis goes.
-        #[serde(default)]
-        rate_fps: f64,
-        /// Start again from the first file after the last one.
-        #[serde(default)]
-        repeat: bool,
-        #[serde(default = "default_wait")]
-        overload: Overload,
-    },
-    /// The built-in generated scene (the demo's sheet inspection).
-    Scene {
-        #[serde(default = "default_scene_width")]
-        width: u32,
-        #[serde(default = "default_scene_height")]
-        height: u32,
-        #[serde(default = "default_scene_fps")]
-        fps: f64,
-        #[serde(default = "default_scene_seed")]
-        seed: u64,
-        /// Frames to generate; 0 for no end.
-        #[serde(default)]
-        count: u64,
-        #[serde(default = "default_drop")]
-        overload: Overload,
-    },
-}
-
-fn default_device() -> String {
-    "/dev/video0".into()
-}
-fn default_fps() -> u32 {
-    5
-}
-fn default_formats() -> Vec<String> {
-    vec!["mjpeg".into(), "yuyv".into(), "nv12".into()]
-}
-fn default_after() -> AfterUse {
-    AfterUse::Keep
-}
-fn default_stable_ms() -> u64 {
-    500
-}
-fn default_poll_ms() -> u64 {
-    100
-}
-fn default_drop() -> Overload {
-    Overload::DropOldest
-}
-fn default_wait() -> Overload {
-    Overload::Wait
-}
-fn default_scene_width() -> u32 {
-    2448
-}
-fn default_scene_height() -> u32 {
-    2048
-}
-fn default_scene_fps() -> f64 {
-    2.0
-}
-fn default_scene_seed() -> u64 {
-    1
-}
-
-#[derive(Clone, Debug, Default, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct MaskConfig {
-    /// Greyscale image of the frame size: black = ignore, white = keep.
-    pub image: Option<PathBuf>,
-    /// Rectangles to ignore, in frame pixels.
-    #[serde(default)]
-    pub ignore: Vec<Rect>,
-}
-
-/// Which analysed frames get a record in the detection log.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "snake_case")]
-pub enum RecordPolicy {
-    All,
-    NotClear,
-}
-
-/// When appended lines are forced to stable storage.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(rename_all = "snake_case")]
-pub enum SyncPolicy {
-    /// Leave it to the operating system.
-    Never,
-    /// At most every `sync_interval_s` seconds, and at rotation and exit.
-    Interval,
-    /// After every record.
-    Always,
-}
-
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct LogConfig {
-    /// The JSON Lines detection log.
-    pub path: PathBuf,
-    #[serde(default = "default_records")]
-    pub records: RecordPolicy,
-    /// Rotate when the file would pass this size.
-    #[serde(default = "default_rotate_mb")]
-    pub rotate_mb: f64,
-    /// Rotated files kept (`path.1` … `path.N`).
-    #[serde(default = "default_keep")]
-    pub keep: usize,
-    #[serde(default = "default_sync")]
-    pub sync: SyncPolicy,
-    #[serde(default = "default_sync_interval")]
-    pub sync_interval_s: f64,
-    /// Seconds between health records.
-    #[serde(default = "default_health")]
-    pub health_interval_s: f64,
-}
-
-fn default_records() -> RecordPolicy {
-    RecordPolicy::All
-}
-fn default_rotate_mb() -> f64 {
-    64.0
-}
-fn default_keep() -> usize {
-    5
-}
-fn default_sync() -> SyncPolicy {
-    SyncPolicy::Interval
-}
-fn default_sync_interval() -> f64 {
-    5.0
-}
-fn default_health() -> f64 {
-    60.0
-}
-
-#[derive(Clone, Debug, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct EvidenceConfig {
-    pub enabled: bool,
-    /// Folder for evidence images (created if missing).
-    pub dir: PathBuf,
-    /// Total size kept; oldest files are removed first.
-    pub quota_mb: f64,
-    /// Files older than this are removed.
-    pub max_age_hours: f64,
-    /// Full-resolution crops saved per frame (highest weight first).
-    pub crops: usize,
-}
-
-impl Default for EvidenceConfig {
-    fn default() -> Self {
-        Self { enabled: false, dir: PathBuf::from("evidence"), quota_mb: 200.0, max_age_hours: 72.0, crops: 4 }
-    }
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -302,7 +96,7 @@ impl Config {
 
     /// Semantic checks; an error is (the key to point at, the message).
     fn check(&self) -> Result<(), (&'static str, String)> {
-        if !self.bundle.join(crate::engine::bundle::MANIFEST).is_file() {
+        if !self.bundle.join(crate::bundle::MANIFEST).is_file() {
             return Err(("bundle", format!("bundle = {:?}: no bundle.toml there", self.bundle)));
         }
         self.engine.validate(None).map_err(|e| (first_word(&e), format!("[engine] {e}")))?;
@@ -390,7 +184,7 @@ impl Config {
     }
 
     /// Checks what depends on the loaded bundle: one threshold per class.
-    pub fn check_bundle(&self, path: &Path, bundle: &crate::engine::Bundle) -> Result<(), String> {
+    pub fn check_bundle(&self, path: &Path, bundle: &Bundle) -> Result<(), String> {
         self.engine
             .validate(Some(bundle.manifest.classes.len()))
             .map_err(|e| format!("{}: [engine] {e}", path.display()))
@@ -398,21 +192,12 @@ impl Config {
 
     /// The frame size when the source fixes it in the config.
     pub fn frame_size(&self) -> Option<(u32, u32)> {
-        match self.source {
-            SourceConfig::Camera { width, height, .. } | SourceConfig::Scene { width, height, .. } => {
-                Some((width, height))
-            }
-            _ => None,
-        }
+        self.source.frame_size()
     }
 
     /// The configured mask, if any.
     pub fn mask(&self) -> Result<Option<Mask>, String> {
-        match (&self.mask.image, self.mask.ignore.is_empty()) {
-            (Some(p), _) => Mask::from_image_file(p).map(Some),
-            (None, false) => Ok(Some(Mask::Ignore(self.mask.ignore.clone()))),
-            (None, true) => Ok(None),
-        }
+        self.mask.load()
     }
 }
 

@@ -9,9 +9,10 @@ use std::sync::Arc;
 use image::RgbImage;
 use saccade::demo::designed::{self, DesignedParams};
 use saccade::demo::scene;
-use saccade::engine::{Bundle, BundleError, Engine, EstimatorKind, Mask, Outcome, Rect, Settings, StopReason};
+use saccade::engine::{
+    Bundle, BundleError, Engine, EstimatorKind, Frame, Mask, Outcome, Rect, Settings, StopReason,
+};
 use saccade::onnx::writer::{Dim, GraphWriter};
-use saccade::source::Frame;
 
 fn load(dir: &Path) -> Result<Bundle, BundleError> {
     Bundle::load(dir, &Settings::default().batch_sizes())
@@ -242,8 +243,8 @@ fn bad_settings_are_refused() {
 
 #[test]
 fn evidence_keeps_its_quota_and_switches_off_when_it_cannot_write() {
-    use saccade::config::EvidenceConfig;
     use saccade::sinks::evidence::Evidence;
+    use saccade::sinks::EvidenceConfig;
     let (_d, mut e) = engine(&DesignedParams::default());
     let frame = sheet_with_spot(640, 480, 400, 200, 6);
     let s = Settings { budget_ms: 10_000.0, min_patches: 16, max_patches: 16, ..Settings::default() };

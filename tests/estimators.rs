@@ -4,7 +4,7 @@
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::StandardNormal;
-use saccade::engine::bundle::Activation;
+use saccade::bundle::Activation;
 use saccade::engine::estimator::{EstimatorKind, Plan};
 use saccade::engine::uncertainty::{probabilities, sample_psi, summarise};
 

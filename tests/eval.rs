@@ -164,7 +164,7 @@ impl Set {
     }
 
     /// Labels of the set in the designed bundle's class order, and the frames.
-    fn truth_and_frames(&self) -> (Vec<Vec<bool>>, Vec<saccade::source::Frame>) {
+    fn truth_and_frames(&self) -> (Vec<Vec<bool>>, Vec<saccade::engine::Frame>) {
         let classes = ["dark_spot", "bright_spot"];
         std::fs::read_to_string(self.path("labels.jsonl"))
             .unwrap()

@@ -5,9 +5,8 @@
 use std::sync::Arc;
 
 use saccade::demo::{scene, shipped};
-use saccade::engine::{Bundle, Engine, Settings};
+use saccade::engine::{Bundle, Engine, Frame, Settings};
 use saccade::eval::metrics::f1;
-use saccade::source::Frame;
 
 #[test]
 fn the_shipped_bundle_finds_the_placed_defects() {

@@ -151,7 +151,7 @@ fn a_stage_that_only_hurts_keeps_the_entry_weights() {
     let labels = scene(dir.path(), 8, 70);
     let o = options(labels.clone(), dir.path().join("unused"));
     let items = saccade::labels::read_labels(&labels).unwrap();
-    let norm = saccade::engine::bundle::Normalization { mean: [0.5; 3], std: [0.25; 3] };
+    let norm = saccade::bundle::Normalization { mean: [0.5; 3], std: [0.25; 3] };
     let data = Dataset::load(&labels, &items, &o.classes, o.shape, &norm, 1 << 24).unwrap();
     let mut rng = ChaCha8Rng::seed_from_u64(1);
     let mut m = saccade::train::fit::Sampled {

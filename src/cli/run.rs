@@ -7,9 +7,9 @@ use std::sync::Arc;
 use std::time::Duration;
 
 use clap::Args;
-use saccade::config::{Config, SourceConfig};
+use saccade::config::Config;
 use saccade::engine::Bundle;
-use saccade::source::{self, SourceCounters};
+use saccade::source::{self, SourceConfig, SourceCounters};
 
 #[derive(Args)]
 pub struct ConfigArgs {
@@ -30,7 +30,7 @@ pub fn check(args: ConfigArgs) -> anyhow::Result<ExitCode> {
     let bundle = Bundle::load(&cfg.bundle, &cfg.engine.batch_sizes())?;
     cfg.check_bundle(&args.config, &bundle).map_err(anyhow::Error::msg)?;
     let stop = Arc::new(AtomicBool::new(false));
-    let running = source::start(&cfg, Arc::new(SourceCounters::default()), stop.clone())
+    let running = source::start(&cfg.source, cfg.max_pixels, Arc::new(SourceCounters::default()), stop.clone())
         .map_err(|e| anyhow::anyhow!("{}: {e}", args.config.display()))?;
     let opened = match &cfg.source {
         // A watched folder may rightly be empty; listing it was the check.

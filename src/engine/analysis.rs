@@ -11,13 +11,13 @@ use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 use tract_onnx::prelude::Tensor;
 
-use super::bundle::{cell_grid, Bundle, BundleError};
 use super::estimator::{EstimatorKind, Plan};
+use super::frame::Frame;
 use super::mask::{self, Mask};
 use super::patches::{Geometry, Normalizer};
 use super::thumbnail::area_reduce;
+use super::networks::{f32_slice, Bundle, BundleError};
 use super::uncertainty::{probabilities, sample_psi, summarise, ClassResult};
-use crate::source::Frame;
 
 /// Per-frame knobs; the daemon reloads these without reloading the bundle.
 #[derive(Clone, Debug, Serialize, Deserialize)]
@@ -283,8 +283,7 @@ impl Engine {
 
         let t = Instant::now();
         let scores = bundle.attention.run(input)?;
-        let (rows, cols) = cell_grid(scores.shape(), th as usize, tw as usize, m.cell_stride as usize)
-            .map_err(|msg| BundleError::Network { path: bundle.attention.path.clone(), message: msg })?;
+        let (rows, cols) = bundle.cell_grid(scores.shape(), th as usize, tw as usize)?;
         let geometry = Geometry {
             frame_w: fw,
             frame_h: fh,
@@ -435,12 +434,6 @@ pub fn softmax(scores: &[f32]) -> Vec<f64> {
     let s: f64 = a.iter().sum();
     a.iter_mut().for_each(|x| *x /= s);
     a
-}
-
-/// The contiguous f32 storage of a tensor made by `Tensor::zero::<f32>`.
-pub fn f32_slice(t: &mut Tensor) -> &mut [f32] {
-    let view = t.to_plain_array_view_mut::<f32>().expect("f32 tensor");
-    view.into_slice().expect("contiguous tensor")
 }
 
 fn ms(d: Duration) -> f64 {

@@ -5,7 +5,7 @@
 //! Each cell's attention is multiplied by the mean keep value over the frame pixels the
 //! cell covers, so a cell half inside an ignored zone keeps half its weight.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use image::GrayImage;
 use serde::{Deserialize, Serialize};
@@ -20,6 +20,28 @@ pub struct Rect {
     pub y: u32,
     pub width: u32,
     pub height: u32,
+}
+
+#[derive(Clone, Debug, Default, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+/// The `[mask]` table of the daemon's config.
+pub struct MaskConfig {
+    /// Greyscale image of the frame size: black = ignore, white = keep.
+    pub image: Option<PathBuf>,
+    /// Rectangles to ignore, in frame pixels.
+    #[serde(default)]
+    pub ignore: Vec<Rect>,
+}
+
+impl MaskConfig {
+    /// The mask this describes, if any.
+    pub fn load(&self) -> Result<Option<Mask>, String> {
+        match (&self.image, self.ignore.is_empty()) {
+            (Some(p), _) => Mask::from_image_file(p).map(Some),
+            (None, false) => Ok(Some(Mask::Ignore(self.ignore.clone()))),
+            (None, true) => Ok(None),
+        }
+    }
 }
 
 #[derive(Clone, Debug)]

@@ -43,7 +43,7 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     let counters = Arc::new(SourceCounters::default());
     let (sinks, sinks_thread) = worker::spawn(log, cfg.log.clone(), &cfg.evidence, counters.clone())?;
     let source_stop = Arc::new(AtomicBool::new(false));
-    let running = source::start(&cfg, counters.clone(), source_stop.clone())
+    let running = source::start(&cfg.source, cfg.max_pixels, counters.clone(), source_stop.clone())
         .map_err(|e| anyhow::anyhow!("{}: {e}", config_path.display()))?;
     log::info!(
         "bundle {} ({} classes) and source up; log {}",

@@ -10,7 +10,7 @@ use std::time::{Duration, SystemTime};
 
 use image::{Rgb, RgbImage};
 
-use crate::config::EvidenceConfig;
+use super::config::EvidenceConfig;
 use crate::engine::Report;
 
 pub struct Evidence {

@@ -11,7 +11,7 @@ use nokhwa::Camera;
 use super::decode::decode_bytes;
 use super::feed::{Feed, FrameError};
 use super::yuv::{nv12_to_rgb, yuyv_to_rgb};
-use super::Frame;
+use crate::engine::Frame;
 
 pub struct CameraSource {
     pub device: String,

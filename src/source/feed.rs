@@ -7,8 +7,8 @@ use std::time::Duration;
 
 use crossbeam_channel::{bounded, Receiver, SendTimeoutError, Sender, TrySendError};
 
-use super::Frame;
-use crate::config::Overload;
+use super::config::Overload;
+use crate::engine::Frame;
 
 /// A frame, or why a frame could not be had (logged, then the daemon goes on).
 pub type Item = Result<Frame, FrameError>;

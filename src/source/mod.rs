@@ -3,11 +3,11 @@
 
 #[cfg(feature = "camera")]
 pub mod camera;
+mod config;
 pub mod decode;
 pub mod feed;
 pub mod files;
 pub mod folder;
-pub mod frame;
 pub mod scene;
 pub mod yuv;
 
@@ -18,11 +18,9 @@ use std::time::Duration;
 
 use crossbeam_channel::Receiver;
 
+pub use config::{AfterUse, Overload, SourceConfig};
 pub use decode::{decode_bytes, decode_file, DecodeError, DEFAULT_MAX_PIXELS};
 pub use feed::{FrameError, Item, SourceCounters};
-pub use frame::Frame;
-
-use crate::config::{Config, Overload, SourceConfig};
 
 /// A running source thread and the receiving end of its feed.
 pub struct Running {
@@ -32,22 +30,20 @@ pub struct Running {
 
 /// Opens the configured source and starts its thread. Errors (a missing folder, a
 /// pattern matching nothing) are reported here, before the daemon says it is ready.
-pub fn start(cfg: &Config, counters: Arc<SourceCounters>, stop: Arc<AtomicBool>) -> Result<Running, String> {
-    let max_pixels = cfg.max_pixels;
-    let overload = match &cfg.source {
-        SourceConfig::Folder { overload, .. }
-        | SourceConfig::Files { overload, .. }
-        | SourceConfig::Scene { overload, .. } => *overload,
-        SourceConfig::Camera { .. } => Overload::DropOldest,
-    };
-    let (feed, frames) = feed::feed(overload, counters, stop);
+pub fn start(
+    cfg: &SourceConfig,
+    max_pixels: u64,
+    counters: Arc<SourceCounters>,
+    stop: Arc<AtomicBool>,
+) -> Result<Running, String> {
+    let (feed, frames) = feed::feed(cfg.overload(), counters, stop);
     let spawn = |name: &str, f: Box<dyn FnOnce() + Send>| {
         std::thread::Builder::new()
             .name(name.into())
             .spawn(f)
             .map_err(|e| format!("cannot start the source thread: {e}"))
     };
-    let thread = match cfg.source.clone() {
+    let thread = match cfg.clone() {
         SourceConfig::Folder { path, after, move_to, stable_ms, poll_ms, .. } => {
             if !path.is_dir() {
                 return Err(format!("[source] path {}: not a folder", path.display()));

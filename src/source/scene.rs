@@ -3,8 +3,8 @@
 use std::time::{Duration, Instant};
 
 use super::feed::Feed;
-use super::Frame;
 use crate::demo::scene;
+use crate::engine::Frame;
 
 pub struct SceneSource {
     pub width: u32,

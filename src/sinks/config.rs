@@ -1,0 +1,86 @@
+//! The `[log]` and `[evidence]` tables of the daemon's config.
+
+use std::path::PathBuf;
+
+use serde::{Deserialize, Serialize};
+
+/// Which analysed frames get a record in the detection log.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum RecordPolicy {
+    All,
+    NotClear,
+}
+
+/// When appended lines are forced to stable storage.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum SyncPolicy {
+    /// Leave it to the operating system.
+    Never,
+    /// At most every `sync_interval_s` seconds, and at rotation and exit.
+    Interval,
+    /// After every record.
+    Always,
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LogConfig {
+    /// The JSON Lines detection log.
+    pub path: PathBuf,
+    #[serde(default = "default_records")]
+    pub records: RecordPolicy,
+    /// Rotate when the file would pass this size.
+    #[serde(default = "default_rotate_mb")]
+    pub rotate_mb: f64,
+    /// Rotated files kept (`path.1` … `path.N`).
+    #[serde(default = "default_keep")]
+    pub keep: usize,
+    #[serde(default = "default_sync")]
+    pub sync: SyncPolicy,
+    #[serde(default = "default_sync_interval")]
+    pub sync_interval_s: f64,
+    /// Seconds between health records.
+    #[serde(default = "default_health")]
+    pub health_interval_s: f64,
+}
+
+fn default_records() -> RecordPolicy {
+    RecordPolicy::All
+}
+fn default_rotate_mb() -> f64 {
+    64.0
+}
+fn default_keep() -> usize {
+    5
+}
+fn default_sync() -> SyncPolicy {
+    SyncPolicy::Interval
+}
+fn default_sync_interval() -> f64 {
+    5.0
+}
+fn default_health() -> f64 {
+    60.0
+}
+
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct EvidenceConfig {
+    pub enabled: bool,
+    /// Folder for evidence images (created if missing).
+    pub dir: PathBuf,
+    /// Total size kept; oldest files are removed first.
+    pub quota_mb: f64,
+    /// Files older than this are removed.
+    pub max_age_hours: f64,
+    /// Full-resolution crops saved per frame (highest weight first).
+    pub crops: usize,
+}
+
+impl Default for EvidenceConfig {
+    fn default() -> Self {
+        Self { enabled: false, dir: PathBuf::from("evidence"), quota_mb: 200.0, max_age_hours: 72.0, crops: 4 }
+    }
+}
