@@ -5,9 +5,9 @@
 
 use std::path::{Path, PathBuf};
 
-use serde::{Deserialize, Serialize};
+use serde::{de, Deserialize, Serialize};
 
-use crate::engine::{Bundle, Mask, MaskConfig, Settings};
+use crate::engine::{Bundle, Mask, MaskConfig, MaskError, Settings};
 use crate::sinks::{EvidenceConfig, LogConfig};
 use crate::source::{AfterUse, SourceConfig, DEFAULT_MAX_PIXELS};
 
@@ -21,7 +21,7 @@ pub struct Config {
     pub max_pixels: u64,
     pub source: SourceConfig,
     #[serde(default)]
-    pub engine: Settings,
+    pub engine: EngineSection,
     #[serde(default)]
     pub mask: MaskConfig,
     pub log: LogConfig,
@@ -31,6 +31,102 @@ pub struct Config {
 
 fn default_max_pixels() -> u64 {
     DEFAULT_MAX_PIXELS
+}
+
+/// The `[engine]` table: the engine's settings, and the daemon's base seed (frame `n` is
+/// analysed with seed `seed + n`, recorded in its report).
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct EngineSection {
+    pub settings: Settings,
+    pub seed: u64,
+}
+
+impl Serialize for EngineSection {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        #[derive(Serialize)]
+        struct Flat<'a> {
+            #[serde(flatten)]
+            settings: &'a Settings,
+            seed: u64,
+        }
+        Flat { settings: &self.settings, seed: self.seed }.serialize(s)
+    }
+}
+
+impl<'de> Deserialize<'de> for EngineSection {
+    /// `seed` is taken aside and every other key goes to [`Settings`], entry by entry, so
+    /// that the TOML parser still points its errors at the right key.
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct Table;
+        impl<'de> de::Visitor<'de> for Table {
+            type Value = EngineSection;
+            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+                f.write_str("the [engine] table")
+            }
+            fn visit_map<A: de::MapAccess<'de>>(self, map: A) -> Result<EngineSection, A::Error> {
+                let mut seed = None;
+                let settings =
+                    Settings::deserialize(de::value::MapAccessDeserializer::new(SeedAside { map, seed: &mut seed }))?;
+                Ok(EngineSection { settings, seed: seed.unwrap_or(0) })
+            }
+        }
+        d.deserialize_map(Table)
+    }
+}
+
+/// The entries of a map, less `seed`, whose value it stores.
+struct SeedAside<'s, A> {
+    map: A,
+    seed: &'s mut Option<u64>,
+}
+
+/// A key: `seed` (handing back the wrapped key seed), or what the wrapped seed made of it.
+enum Key<K, V> {
+    Seed(K),
+    Other(V),
+}
+
+/// Reads a key as a string and passes it on unless it is `seed`. The key stays inside the
+/// TOML parser's own key deserializer, which attaches the key's position to errors.
+struct KeySeed<K>(K);
+
+impl<'de, K: de::DeserializeSeed<'de>> de::DeserializeSeed<'de> for KeySeed<K> {
+    type Value = Key<K, K::Value>;
+    fn deserialize<D: serde::Deserializer<'de>>(self, d: D) -> Result<Self::Value, D::Error> {
+        d.deserialize_str(self)
+    }
+}
+
+impl<'de, K: de::DeserializeSeed<'de>> de::Visitor<'de> for KeySeed<K> {
+    type Value = Key<K, K::Value>;
+    fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+        f.write_str("a key")
+    }
+    fn visit_str<E: de::Error>(self, key: &str) -> Result<Self::Value, E> {
+        if key == "seed" {
+            return Ok(Key::Seed(self.0));
+        }
+        self.0.deserialize(de::value::StrDeserializer::<E>::new(key)).map(Key::Other)
+    }
+}
+
+impl<'de, A: de::MapAccess<'de>> de::MapAccess<'de> for SeedAside<'_, A> {
+    type Error = A::Error;
+    fn next_key_seed<K: de::DeserializeSeed<'de>>(&mut self, mut seed: K) -> Result<Option<K::Value>, A::Error> {
+        loop {
+            match self.map.next_key_seed(KeySeed(seed))? {
+                None => return Ok(None),
+                Some(Key::Other(v)) => return Ok(Some(v)),
+                Some(Key::Seed(back)) => {
+                    *self.seed = Some(self.map.next_value()?);
+                    seed = back;
+                }
+            }
+        }
+    }
+    fn next_value_seed<V: de::DeserializeSeed<'de>>(&mut self, seed: V) -> Result<V::Value, A::Error> {
+        self.map.next_value_seed(seed)
+    }
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -99,7 +195,7 @@ impl Config {
         if !self.bundle.join(crate::bundle::MANIFEST).is_file() {
             return Err(("bundle", format!("bundle = {:?}: no bundle.toml there", self.bundle)));
         }
-        self.engine.validate(None).map_err(|e| (first_word(&e), format!("[engine] {e}")))?;
+        self.engine.settings.check(None).map_err(|e| (e.field(), format!("[engine] {e}")))?;
         if self.max_pixels == 0 {
             return Err(("max_pixels", "max_pixels = 0: expected a positive pixel count".into()));
         }
@@ -161,8 +257,8 @@ impl Config {
             }
         }
         if let Some(size) = self.frame_size() {
-            if let Some(mask) = self.mask().map_err(|e| ("image", format!("[mask] {e}")))? {
-                mask.check(size.0, size.1).map_err(|e| ("ignore", format!("[mask] {e}")))?;
+            if let Some(mask) = self.mask().map_err(|e| (e.field(), format!("[mask] {e}")))? {
+                mask.check(size.0, size.1).map_err(|e| (e.field(), format!("[mask] {e}")))?;
             }
         }
         let log = &self.log;
@@ -186,7 +282,8 @@ impl Config {
     /// Checks what depends on the loaded bundle: one threshold per class.
     pub fn check_bundle(&self, path: &Path, bundle: &Bundle) -> Result<(), String> {
         self.engine
-            .validate(Some(bundle.manifest.classes.len()))
+            .settings
+            .check(Some(bundle.manifest.classes.len()))
             .map_err(|e| format!("{}: [engine] {e}", path.display()))
     }
 
@@ -196,16 +293,9 @@ impl Config {
     }
 
     /// The configured mask, if any.
-    pub fn mask(&self) -> Result<Option<Mask>, String> {
+    pub fn mask(&self) -> Result<Option<Mask>, MaskError> {
         self.mask.load()
     }
-}
-
-fn first_word(e: &str) -> &'static str {
-    ["budget_ms", "min_patches", "max_patches", "batch", "samples", "interval", "thresholds"]
-        .into_iter()
-        .find(|k| e.starts_with(k))
-        .unwrap_or("engine")
 }
 
 /// The folder exists or can be created, and is writable.

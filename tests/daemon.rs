@@ -386,6 +386,9 @@ fn shipped_configs_parse_and_check_prints_the_effective_config() {
     let out = Command::new(BIN).args(["check", "--config", cfg.to_str().unwrap()]).output().unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let effective: Config = toml::from_str(&String::from_utf8(out.stdout).unwrap()).unwrap();
-    assert_eq!((effective.engine.budget_ms, effective.engine.max_patches, effective.log.rotate_mb), (100.0, 256, 64.0));
+    assert_eq!(
+        (effective.engine.settings.budget_ms, effective.engine.settings.max_patches, effective.log.rotate_mb),
+        (100.0, 256, 64.0)
+    );
     assert!(String::from_utf8_lossy(&out.stderr).contains("first frame"));
 }

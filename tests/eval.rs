@@ -277,13 +277,11 @@ fn sweep_exhaustive_row_matches_a_plain_exhaustive_analysis() {
     // The same frames through Engine::analyze, exhaustive, scored separately.
     let bundle = Arc::new(Bundle::load(&set.bundle, &Settings::default().batch_sizes()).unwrap());
     let thresholds = bundle.manifest.thresholds.clone();
-    let mut engine = Engine::new(bundle);
     let dense = Settings { estimator: EstimatorKind::Exhaustive, ..Settings::default() };
+    let mut engine = Engine::new(bundle, dense).unwrap();
     let (truth, frames) = set.truth_and_frames();
-    let probs: Vec<Vec<f64>> = frames
-        .iter()
-        .map(|f| engine.analyze(f, &dense, 9).unwrap().classes.iter().map(|c| c.probability).collect())
-        .collect();
+    let probs: Vec<Vec<f64>> =
+        frames.iter().map(|f| engine.analyze(f, 9).unwrap().classes.iter().map(|c| c.probability).collect()).collect();
     let f = metrics::f1(&truth, &metrics::predict(&probs, &thresholds));
     assert!(f.macro_f1 < 1.0, "the mislabelled frame costs F1: {f:?}");
     assert!((num(ex, "macro_f1") - f.macro_f1).abs() < 1e-12, "sweep {} vs plain {}", num(ex, "macro_f1"), f.macro_f1);

@@ -51,7 +51,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
     std::fs::create_dir_all(&frames_dir).with_context(|| format!("creating {}", frames_dir.display()))?;
     let settings = Settings { budget_ms: args.budget_ms, ..Settings::default() };
     let bundle = Bundle::load(&bundle_dir, &settings.batch_sizes())?;
-    let mut engine = Engine::new(Arc::new(bundle));
+    let mut engine = Engine::new(Arc::new(bundle), settings)?;
     let mut out = std::io::stdout().lock();
     for n in 0..args.frames {
         let seed = args.seed.wrapping_mul(1_000_003).wrapping_add(n as u64);
@@ -61,7 +61,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
         let t = std::time::Instant::now();
         let frame = decode_file(&path, n as u64, DEFAULT_MAX_PIXELS)?;
         let decode_ms = t.elapsed().as_secs_f64() * 1000.0;
-        let mut report = engine.analyze(&frame, &settings, seed)?;
+        let mut report = engine.analyze(&frame, seed)?;
         report.times_ms.decode = Some(decode_ms);
         writeln!(out, "{}", serde_json::to_string(&report)?)?;
         let placed = generated.classes();

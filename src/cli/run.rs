@@ -27,7 +27,7 @@ pub fn run(args: ConfigArgs) -> anyhow::Result<ExitCode> {
 /// Validate the config, load the bundle, open the source once, print the effective config.
 pub fn check(args: ConfigArgs) -> anyhow::Result<ExitCode> {
     let cfg = Config::load(&args.config)?;
-    let bundle = Bundle::load(&cfg.bundle, &cfg.engine.batch_sizes())?;
+    let bundle = Bundle::load(&cfg.bundle, &cfg.engine.settings.batch_sizes())?;
     cfg.check_bundle(&args.config, &bundle).map_err(anyhow::Error::msg)?;
     let stop = Arc::new(AtomicBool::new(false));
     let running = source::start(&cfg.source, cfg.max_pixels, Arc::new(SourceCounters::default()), stop.clone())

@@ -6,21 +6,21 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use image::RgbImage;
-use rand::SeedableRng;
+use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 use tract_onnx::prelude::Tensor;
 
-use super::estimator::{EstimatorKind, Plan};
+use super::estimator::{CellOrder, EstimatorKind, Weights};
 use super::frame::Frame;
-use super::mask::{self, Mask};
+use super::mask::{self, Mask, MaskError};
+use super::networks::{f32_slice, zeros, Bundle, BundleError};
 use super::patches::{Geometry, Normalizer};
-use super::thumbnail::area_reduce;
-use super::networks::{f32_slice, Bundle, BundleError};
+use super::thumbnail::{area_reduce, thumbnail_size};
 use super::uncertainty::{probabilities, sample_psi, summarise, ClassResult};
 
 /// Per-frame knobs; the daemon reloads these without reloading the bundle.
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct Settings {
     /// Time allowed from the start of the thumbnail to the end of the head, in ms.
@@ -38,8 +38,6 @@ pub struct Settings {
     pub interval: f64,
     /// Per-class thresholds overriding the bundle's defaults.
     pub thresholds: Option<Vec<f64>>,
-    /// Base RNG seed: the daemon gives frame `n` the seed `seed + n`, recorded in its report.
-    pub seed: u64,
 }
 
 impl Default for Settings {
@@ -53,39 +51,73 @@ impl Default for Settings {
             samples: 64,
             interval: 0.9,
             thresholds: None,
-            seed: 0,
+        }
+    }
+}
+
+/// A setting out of its range; [`SettingsError::field`] names the key.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum SettingsError {
+    #[error("budget_ms = {0}: expected a positive number of milliseconds")]
+    Budget(f64),
+    #[error("min_patches = 0: expected at least 1 (an estimate needs one patch)")]
+    MinPatches,
+    #[error("max_patches = {max} is below min_patches = {min}")]
+    MaxPatches { max: usize, min: usize },
+    #[error("batch = {0}: expected 1 to 256")]
+    Batch(usize),
+    #[error("interval = {0}: expected a level strictly between 0 and 1, e.g. 0.9")]
+    Interval(f64),
+    #[error("samples = 0: expected at least 1 Gaussian sample for the interval")]
+    Samples,
+    #[error("thresholds: expected one per class ({classes}), found {found}")]
+    ThresholdCount { classes: usize, found: usize },
+    #[error("thresholds: {0} is outside [0, 1]")]
+    ThresholdRange(f64),
+}
+
+impl SettingsError {
+    /// The settings key the error is about.
+    pub fn field(&self) -> &'static str {
+        match self {
+            Self::Budget(_) => "budget_ms",
+            Self::MinPatches => "min_patches",
+            Self::MaxPatches { .. } => "max_patches",
+            Self::Batch(_) => "batch",
+            Self::Interval(_) => "interval",
+            Self::Samples => "samples",
+            Self::ThresholdCount { .. } | Self::ThresholdRange(_) => "thresholds",
         }
     }
 }
 
 impl Settings {
-    /// Checks the values (and the threshold count when the class count is known); errors
-    /// name the field and what was expected.
-    pub fn validate(&self, classes: Option<usize>) -> Result<(), String> {
+    /// Checks the values, and the threshold count when the class count is known.
+    pub fn check(&self, classes: Option<usize>) -> Result<(), SettingsError> {
         if !(self.budget_ms > 0.0 && self.budget_ms.is_finite()) {
-            return Err(format!("budget_ms = {}: expected a positive number of milliseconds", self.budget_ms));
+            return Err(SettingsError::Budget(self.budget_ms));
         }
         if self.min_patches == 0 {
-            return Err("min_patches = 0: expected at least 1 (an estimate needs one patch)".into());
+            return Err(SettingsError::MinPatches);
         }
         if self.max_patches < self.min_patches {
-            return Err(format!("max_patches = {} is below min_patches = {}", self.max_patches, self.min_patches));
+            return Err(SettingsError::MaxPatches { max: self.max_patches, min: self.min_patches });
         }
         if self.batch == 0 || self.batch > 256 {
-            return Err(format!("batch = {}: expected 1 to 256", self.batch));
+            return Err(SettingsError::Batch(self.batch));
         }
         if !(self.interval > 0.0 && self.interval < 1.0) {
-            return Err(format!("interval = {}: expected a level strictly between 0 and 1, e.g. 0.9", self.interval));
+            return Err(SettingsError::Interval(self.interval));
         }
         if self.samples == 0 {
-            return Err("samples = 0: expected at least 1 Gaussian sample for the interval".into());
+            return Err(SettingsError::Samples);
         }
         if let Some(t) = &self.thresholds {
             if let Some(classes) = classes.filter(|&c| c != t.len()) {
-                return Err(format!("thresholds: expected one per class ({classes}), found {}", t.len()));
+                return Err(SettingsError::ThresholdCount { classes, found: t.len() });
             }
             if let Some(v) = t.iter().find(|v| !(0.0..=1.0).contains(*v)) {
-                return Err(format!("thresholds: {v} is outside [0, 1]"));
+                return Err(SettingsError::ThresholdRange(*v));
             }
         }
         Ok(())
@@ -175,19 +207,19 @@ pub struct Report {
     #[serde(skip)]
     pub attention: Vec<f64>,
     #[serde(skip)]
-    pub geometry: Option<Geometry>,
+    pub geometry: Geometry,
     #[serde(skip)]
-    pub thumbnail: Option<RgbImage>,
+    pub thumbnail: RgbImage,
 }
 
 #[derive(Debug, thiserror::Error)]
 pub enum EngineError {
     #[error(transparent)]
     Bundle(#[from] BundleError),
-    #[error("{0}")]
-    Mask(String),
+    #[error("mask: {0}")]
+    Mask(#[from] MaskError),
     #[error("settings: {0}")]
-    Settings(String),
+    Settings(#[from] SettingsError),
 }
 
 /// Running estimates of what the next batch and the head will cost.
@@ -217,9 +249,23 @@ impl CostModel {
     }
 }
 
-/// The engine for one bundle; holds per-shape caches, so one per analysis thread.
+/// The thumbnail of a frame and the attention network's input made from it.
+pub struct Thumbnail {
+    pub image: RgbImage,
+    pub input: Tensor,
+}
+
+/// The attention over the cells of one frame, after the mask, summing to 1.
+pub struct Attention {
+    pub geometry: Geometry,
+    pub cells: Vec<f64>,
+}
+
+/// The engine for one bundle and one set of checked settings. It holds the cost model
+/// and the mask cache, so one per analysis thread; the bundle is shared.
 pub struct Engine {
     bundle: Arc<Bundle>,
+    settings: Settings,
     norm: Normalizer,
     cost: CostModel,
     mask: Option<Mask>,
@@ -227,15 +273,42 @@ pub struct Engine {
 }
 
 impl Engine {
-    pub fn new(bundle: Arc<Bundle>) -> Self {
+    /// Checks `settings` against the bundle and builds the plans they need.
+    pub fn new(bundle: Arc<Bundle>, settings: Settings) -> Result<Self, EngineError> {
         let norm = Normalizer::new(&bundle.manifest.normalization);
         let per_patch = bundle.dry_run.per_patch.iter().map(|(b, t)| (*b, t.as_secs_f64())).collect();
         let cost = CostModel { per_patch, head_base: bundle.dry_run.head.as_secs_f64(), head_per_patch: 0.0 };
-        Self { bundle, norm, cost, mask: None, mask_cache: None }
+        let mut engine = Self { bundle, settings: Settings::default(), norm, cost, mask: None, mask_cache: None };
+        engine.set_settings(settings)?;
+        Ok(engine)
     }
 
     pub fn bundle(&self) -> &Bundle {
         &self.bundle
+    }
+
+    pub fn settings(&self) -> &Settings {
+        &self.settings
+    }
+
+    /// Replaces the settings after checking them, and builds the plans (and first cost
+    /// estimates) of any new batch size or sample count now, outside any frame's budget.
+    /// On an error the engine keeps its settings.
+    pub fn set_settings(&mut self, settings: Settings) -> Result<(), EngineError> {
+        let m = &self.bundle.manifest;
+        settings.check(Some(m.classes.len()))?;
+        let p = m.patch_size as usize;
+        for b in settings.batch_sizes() {
+            self.bundle.features.plan(&[b, 3, p, p])?;
+            if !self.cost.per_patch.contains_key(&b) {
+                let t = Instant::now();
+                self.bundle.features.run(zeros(&[b, 3, p, p]))?;
+                self.cost.per_patch.insert(b, t.elapsed().as_secs_f64() / b as f64);
+            }
+        }
+        self.bundle.head.plan(&[settings.samples + 1, m.feature_dim])?;
+        self.settings = settings;
+        Ok(())
     }
 
     /// Replaces the mask (None: examine the whole frame).
@@ -244,76 +317,47 @@ impl Engine {
         self.mask_cache = None;
     }
 
-    /// Builds the plans one frame size and these settings need, so that the first frame
-    /// is not charged for them.
-    pub fn prepare(&mut self, width: u32, height: u32, settings: &Settings) -> Result<(), EngineError> {
-        let m = &self.bundle.manifest;
-        let (tw, th) = super::thumbnail::thumbnail_size(width, height, m.thumbnail_factor);
-        self.bundle.attention.plan(&[1, 3, th as usize, tw as usize])?;
-        let p = m.patch_size as usize;
-        for b in settings.batch_sizes() {
-            self.bundle.features.plan(&[b, 3, p, p])?;
-        }
-        self.bundle.head.plan(&[settings.samples + 1, m.feature_dim])?;
+    fn attention_shape(&self, width: u32, height: u32) -> [usize; 4] {
+        let (tw, th) = thumbnail_size(width, height, self.bundle.manifest.thumbnail_factor);
+        [1, 3, th as usize, tw as usize]
+    }
+
+    /// Builds the plan a frame size needs, so that the first frame of that size is not
+    /// charged for it ([`Engine::analyze`] does it otherwise, outside the budget).
+    pub fn prepare(&mut self, width: u32, height: u32) -> Result<(), EngineError> {
+        self.bundle.attention.plan(&self.attention_shape(width, height))?;
         Ok(())
     }
 
-    /// Analyses one frame within `settings.budget_ms`, drawing randomness from `seed`.
-    pub fn analyze(&mut self, frame: &Frame, settings: &Settings, seed: u64) -> Result<Report, EngineError> {
-        let bundle = self.bundle.clone();
-        let m = &bundle.manifest;
-        settings.validate(Some(m.classes.len())).map_err(EngineError::Settings)?;
+    /// Analyses one frame within the budget, drawing randomness from `seed`.
+    pub fn analyze(&mut self, frame: &Frame, seed: u64) -> Result<Report, EngineError> {
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
         let mut times = StageTimes::default();
         let (fw, fh) = (frame.width(), frame.height());
-        let (tw, th) = super::thumbnail::thumbnail_size(fw, fh, m.thumbnail_factor);
-        let attention_shape = [1, 3, th as usize, tw as usize];
-        if !bundle.attention.has_plan(&attention_shape) {
+        if !self.bundle.attention.has_plan(&self.attention_shape(fw, fh)) {
             let t = Instant::now();
-            self.prepare(fw, fh, settings)?;
+            self.prepare(fw, fh)?;
             times.plan = ms(t.elapsed());
         }
+        let s = self.settings.clone();
 
         let start = Instant::now();
-        let budget = Duration::from_secs_f64(settings.budget_ms / 1000.0);
-        let thumb = area_reduce(&frame.image, m.thumbnail_factor);
-        let mut input = Tensor::zero::<f32>(&attention_shape).expect("thumbnail tensor");
-        self.norm.write_planar(&thumb, f32_slice(&mut input));
+        let budget = Duration::from_secs_f64(s.budget_ms / 1000.0);
+        let Thumbnail { image: thumb, input } = self.thumbnail(frame);
         times.thumbnail = ms(start.elapsed());
 
         let t = Instant::now();
-        let scores = bundle.attention.run(input)?;
-        let (rows, cols) = bundle.cell_grid(scores.shape(), th as usize, tw as usize)?;
-        let geometry = Geometry {
-            frame_w: fw,
-            frame_h: fh,
-            factor: m.thumbnail_factor,
-            stride: m.cell_stride,
-            patch: m.patch_size,
-            rows,
-            cols,
-        };
-        let mut a = softmax(scores.as_slice().expect("dense output"));
-        if let Some(factors) = self.mask_factors(&geometry)? {
-            mask::apply(&mut a, &factors)
-                .ok_or_else(|| EngineError::Mask("the mask leaves no attention on this frame".into()))?;
-        }
+        let Attention { geometry, cells: a } = self.attention(frame, input)?;
         times.attention = ms(t.elapsed());
 
         let t = Instant::now();
-        let plan = Plan::new(settings.estimator, &a, settings.max_patches, &mut rng);
-        let (k, stop, feats) = self.patch_loop(frame, &geometry, &plan, settings, start + budget)?;
+        let order = CellOrder::new(s.estimator, &a, s.max_patches, &mut rng);
+        let (k, stop, feats) = self.patch_loop(frame, &geometry, &order, start + budget)?;
         times.patches = ms(t.elapsed());
 
         let t = Instant::now();
-        let weights = plan.weights(k);
-        let d = m.feature_dim;
-        let rows_psi = sample_psi(&weights, &feats, d, settings.samples, &mut rng);
-        let n = settings.samples + 1;
-        let logits = bundle.head.run(Tensor::from_shape(&[n, d], &rows_psi).expect("head input"))?;
-        let probs = probabilities(logits.as_slice().expect("dense output"), m.classes.len(), m.activation);
-        let thresholds = settings.thresholds.as_ref().unwrap_or(&m.thresholds);
-        let classes = summarise(&probs, &m.classes, thresholds, settings.interval);
+        let weights = order.weights(k);
+        let classes = self.head(&weights, &feats, &mut rng)?;
         let head_time = t.elapsed();
         let per = (head_time.as_secs_f64() - self.cost.head_base).max(0.0) / k as f64;
         CostModel::update(&mut self.cost.head_per_patch, per);
@@ -321,7 +365,9 @@ impl Engine {
         let elapsed = start.elapsed();
         times.total = ms(elapsed);
 
-        let patches = plan.order[..k]
+        let m = &self.bundle.manifest;
+        let cols = geometry.cols;
+        let patches = order.cells[..k]
             .iter()
             .zip(&weights.w)
             .map(|(&i, &w)| {
@@ -334,57 +380,110 @@ impl Engine {
             origin: frame.origin.clone(),
             width: fw,
             height: fh,
-            estimator: settings.estimator,
+            estimator: s.estimator,
             seed,
             classes,
             patch_count: k,
             cells: geometry.cells(),
-            attention_mass: plan.order[..k].iter().map(|&i| a[i]).sum(),
+            attention_mass: order.cells[..k].iter().map(|&i| a[i]).sum(),
             patches,
             times_ms: times,
-            budget_ms: settings.budget_ms,
+            budget_ms: s.budget_ms,
             budget_met: elapsed <= budget,
             stop,
-            psi: weights.estimate(&feats, d),
+            psi: weights.estimate(&feats, m.feature_dim),
             attention: a,
-            geometry: Some(geometry),
-            thumbnail: Some(thumb),
+            geometry,
+            thumbnail: thumb,
         })
     }
 
-    fn mask_factors(&mut self, g: &Geometry) -> Result<Option<Vec<f64>>, EngineError> {
+    /// Stage 1: the area-average thumbnail and the attention network's input.
+    pub fn thumbnail(&self, frame: &Frame) -> Thumbnail {
+        let image = area_reduce(&frame.image, self.bundle.manifest.thumbnail_factor);
+        let mut input = zeros(&[1, 3, image.height() as usize, image.width() as usize]);
+        self.norm.write_planar(&image, f32_slice(&mut input));
+        Thumbnail { image, input }
+    }
+
+    /// Stage 2: the attention network on the thumbnail, softmax over the cells, the mask.
+    pub fn attention(&mut self, frame: &Frame, input: Tensor) -> Result<Attention, EngineError> {
+        let m = &self.bundle.manifest;
+        let (th, tw) = (input.shape()[2], input.shape()[3]);
+        let (shape, scores) = self.bundle.attention.run_flat(input)?;
+        let (rows, cols) = self.bundle.cell_grid(&shape, th, tw)?;
+        let geometry = Geometry {
+            frame_w: frame.width(),
+            frame_h: frame.height(),
+            factor: m.thumbnail_factor,
+            stride: m.cell_stride,
+            patch: m.patch_size,
+            rows,
+            cols,
+        };
+        let mut cells = softmax(&scores);
+        if let Some(factors) = self.mask_factors(&geometry)? {
+            mask::apply(&mut cells, &factors).ok_or(MaskError::NothingLeft)?;
+        }
+        Ok(Attention { geometry, cells })
+    }
+
+    /// Stage 3, one batch: the full-resolution patches of `cells` through the feature
+    /// network; one row of `feature_dim` values per cell.
+    pub fn features(&self, frame: &Frame, g: &Geometry, cells: &[usize]) -> Result<Vec<f32>, EngineError> {
+        let p = self.bundle.manifest.patch_size as usize;
+        let mut batch = zeros(&[cells.len(), 3, p, p]);
+        let dst = f32_slice(&mut batch);
+        for (&cell, out) in cells.iter().zip(dst.chunks_exact_mut(3 * p * p)) {
+            self.norm.write_patch(&frame.image, g.patch_origin(cell), p, out);
+        }
+        Ok(self.bundle.features.run_flat(batch)?.1)
+    }
+
+    /// Stage 4: Gaussian samples of the estimate through the head, summarised per class.
+    pub fn head<R: Rng>(&self, weights: &Weights, feats: &[f32], rng: &mut R) -> Result<Vec<ClassResult>, EngineError> {
+        let (m, s) = (&self.bundle.manifest, &self.settings);
+        let d = m.feature_dim;
+        let rows = sample_psi(weights, feats, d, s.samples, rng);
+        let input = Tensor::from_shape(&[s.samples + 1, d], &rows).expect("rows sized from samples and feature_dim");
+        let (_, logits) = self.bundle.head.run_flat(input)?;
+        let probs = probabilities(&logits, m.classes.len(), m.activation);
+        let thresholds = s.thresholds.as_ref().unwrap_or(&m.thresholds);
+        Ok(summarise(&probs, &m.classes, thresholds, s.interval))
+    }
+
+    fn mask_factors(&mut self, g: &Geometry) -> Result<Option<Vec<f64>>, MaskError> {
         let Some(mask) = &self.mask else { return Ok(None) };
         if let Some((cached, f)) = &self.mask_cache {
             if cached == g {
                 return Ok(Some(f.clone()));
             }
         }
-        mask.check(g.frame_w, g.frame_h).map_err(EngineError::Mask)?;
+        mask.check(g.frame_w, g.frame_h)?;
         let f = mask.cell_factors(g);
         self.mask_cache = Some((*g, f.clone()));
         Ok(Some(f))
     }
 
-    /// Computes features along the plan's order until a stop condition; returns the
-    /// number of cells done, why it stopped and their feature rows.
+    /// Computes features along the order until a stop condition; returns the number of
+    /// cells done, why it stopped and their feature rows.
     fn patch_loop(
         &mut self,
         frame: &Frame,
         g: &Geometry,
-        plan: &Plan,
-        s: &Settings,
+        order: &CellOrder,
         deadline: Instant,
     ) -> Result<(usize, StopReason, Vec<f32>), EngineError> {
-        let bundle = self.bundle.clone();
-        let (p, d) = (bundle.manifest.patch_size as usize, bundle.manifest.feature_dim);
-        let exhaustive = plan.kind() == EstimatorKind::Exhaustive;
+        let s = self.settings.clone();
+        let d = self.bundle.manifest.feature_dim;
+        let exhaustive = order.kind() == EstimatorKind::Exhaustive;
         let slack = CostModel::SLACK * s.budget_ms / 1000.0;
-        let limit = if exhaustive { plan.len() } else { plan.len().min(s.max_patches) };
+        let limit = if exhaustive { order.len() } else { order.len().min(s.max_patches) };
         let sizes = s.batch_sizes();
         let mut feats = Vec::with_capacity(limit * d);
         let mut k = 0;
         let stop = loop {
-            if k == plan.len() {
+            if k == order.len() {
                 break StopReason::AllCells;
             }
             if k >= limit {
@@ -407,18 +506,7 @@ impl Engine {
                 }
             };
             let t = Instant::now();
-            let mut batch = Tensor::zero::<f32>(&[nb, 3, p, p]).expect("patch batch");
-            let dst = f32_slice(&mut batch);
-            for (j, &cell) in plan.order[k..k + nb].iter().enumerate() {
-                self.norm.write_patch(
-                    &frame.image,
-                    g.patch_origin(cell),
-                    p,
-                    &mut dst[j * 3 * p * p..(j + 1) * 3 * p * p],
-                );
-            }
-            let out = bundle.features.run(batch)?;
-            feats.extend_from_slice(out.as_slice().expect("dense output"));
+            feats.extend(self.features(frame, g, &order.cells[k..k + nb])?);
             let per = t.elapsed().as_secs_f64() / nb as f64;
             CostModel::update(self.cost.per_patch.entry(nb).or_insert(per), per);
             k += nb;

@@ -35,11 +35,39 @@ pub struct MaskConfig {
 
 impl MaskConfig {
     /// The mask this describes, if any.
-    pub fn load(&self) -> Result<Option<Mask>, String> {
+    pub fn load(&self) -> Result<Option<Mask>, MaskError> {
         match (&self.image, self.ignore.is_empty()) {
-            (Some(p), _) => Mask::from_image_file(p).map(Some),
+            (Some(_), false) => Err(MaskError::Both),
+            (Some(p), true) => Mask::from_image_file(p).map(Some),
             (None, false) => Ok(Some(Mask::Ignore(self.ignore.clone()))),
             (None, true) => Ok(None),
+        }
+    }
+}
+
+/// Why a mask cannot be used.
+#[derive(Debug, thiserror::Error)]
+pub enum MaskError {
+    #[error("{}: cannot read the mask image: {source}", path.display())]
+    Read { path: PathBuf, source: image::ImageError },
+    #[error("give either image or ignore, not both")]
+    Both,
+    #[error("mask image is {width}×{height}, expected the frame size {frame_w}×{frame_h}")]
+    ImageSize { width: u32, height: u32, frame_w: u32, frame_h: u32 },
+    #[error("mask image is black everywhere: it would ignore the whole frame")]
+    AllBlack,
+    #[error("ignore rectangle {n} (x={}, y={}, width={}, height={}) is empty or reaches outside the {frame_w}×{frame_h} frame", rect.x, rect.y, rect.width, rect.height)]
+    Rect { n: usize, rect: Rect, frame_w: u32, frame_h: u32 },
+    #[error("the mask leaves no attention on this frame")]
+    NothingLeft,
+}
+
+impl MaskError {
+    /// The `[mask]` key the error is about.
+    pub fn field(&self) -> &'static str {
+        match self {
+            Self::Read { .. } | Self::ImageSize { .. } | Self::AllBlack => "image",
+            Self::Both | Self::Rect { .. } | Self::NothingLeft => "ignore",
         }
     }
 }
@@ -52,24 +80,21 @@ pub enum Mask {
 
 impl Mask {
     /// Reads a greyscale (or colour, converted) mask image.
-    pub fn from_image_file(path: &Path) -> Result<Self, String> {
-        let img = image::open(path).map_err(|e| format!("{}: cannot read the mask image: {e}", path.display()))?;
+    pub fn from_image_file(path: &Path) -> Result<Self, MaskError> {
+        let img = image::open(path).map_err(|source| MaskError::Read { path: path.to_path_buf(), source })?;
         Ok(Mask::Image(img.into_luma8()))
     }
 
     /// Checks the mask against a frame size and that it leaves something to look at.
-    pub fn check(&self, frame_w: u32, frame_h: u32) -> Result<(), String> {
+    pub fn check(&self, frame_w: u32, frame_h: u32) -> Result<(), MaskError> {
         match self {
             Mask::Image(img) => {
                 if img.dimensions() != (frame_w, frame_h) {
-                    return Err(format!(
-                        "mask image is {}×{}, expected the frame size {frame_w}×{frame_h}",
-                        img.width(),
-                        img.height()
-                    ));
+                    let (width, height) = img.dimensions();
+                    return Err(MaskError::ImageSize { width, height, frame_w, frame_h });
                 }
                 if img.as_raw().iter().all(|&v| v == 0) {
-                    return Err("mask image is black everywhere: it would ignore the whole frame".into());
+                    return Err(MaskError::AllBlack);
                 }
             }
             Mask::Ignore(rects) => {
@@ -79,14 +104,7 @@ impl Mask {
                         || r.x as u64 + r.width as u64 > frame_w as u64
                         || r.y as u64 + r.height as u64 > frame_h as u64
                     {
-                        return Err(format!(
-                            "ignore rectangle {} (x={}, y={}, width={}, height={}) is empty or reaches outside the {frame_w}×{frame_h} frame",
-                            n + 1,
-                            r.x,
-                            r.y,
-                            r.width,
-                            r.height
-                        ));
+                        return Err(MaskError::Rect { n: n + 1, rect: *r, frame_w, frame_h });
                     }
                 }
             }
@@ -178,7 +196,7 @@ mod tests {
         assert!(m.check(17, 8).is_err());
         assert_eq!(m.cell_factors(&geom())[7], 0.0);
         let outside = Mask::Ignore(vec![Rect { x: 10, y: 0, width: 7, height: 2 }]);
-        assert!(outside.check(16, 8).unwrap_err().contains("outside"));
+        assert!(outside.check(16, 8).unwrap_err().to_string().contains("outside"));
         let mut a = vec![0.0, 1.0];
         assert!(apply(&mut a, &[1.0, 0.0]).is_none());
     }

@@ -1,17 +1,26 @@
 //! The attention-sampling engine: frame in, report out.
+//!
+//! Build an [`Engine`] once from a loaded [`Bundle`] and checked [`Settings`], then call
+//! [`Engine::analyze`] per frame. The method's building blocks (thumbnail, patches,
+//! estimators, uncertainty) are public modules so that the trainer and the reference
+//! checks use exactly what the engine uses.
 
-pub mod analysis;
+mod analysis;
 pub mod estimator;
-pub mod frame;
-pub mod mask;
-pub mod networks;
+mod frame;
+mod mask;
+mod networks;
 pub mod patches;
 pub mod thumbnail;
 pub mod uncertainty;
 
-pub use analysis::{Engine, EngineError, Report, Settings, StopReason};
-pub use estimator::EstimatorKind;
+pub use analysis::{
+    softmax, Attention, Engine, EngineError, PatchUse, Report, Settings, SettingsError, StageTimes, StopReason,
+    Thumbnail,
+};
+pub use estimator::{CellOrder, EstimatorKind, Weights};
 pub use frame::Frame;
-pub use mask::{Mask, MaskConfig, Rect};
-pub use networks::{Bundle, BundleError};
-pub use uncertainty::Outcome;
+pub use mask::{Mask, MaskConfig, MaskError, Rect};
+pub use networks::{Bundle, BundleError, DryRunCosts, Network, NetworkProblem};
+pub use patches::{Geometry, Normalizer};
+pub use uncertainty::{ClassResult, Outcome};

@@ -321,12 +321,12 @@ impl Bundle {
 }
 
 /// A zeroed f32 tensor of `shape`.
-pub fn zeros(shape: &[usize]) -> Tensor {
+pub(super) fn zeros(shape: &[usize]) -> Tensor {
     Tensor::zero::<f32>(shape).expect("an f32 tensor of a concrete shape")
 }
 
 /// The contiguous f32 storage of a tensor made by [`zeros`].
-pub fn f32_slice(t: &mut Tensor) -> &mut [f32] {
+pub(super) fn f32_slice(t: &mut Tensor) -> &mut [f32] {
     let view = t.to_plain_array_view_mut::<f32>().expect("f32 tensor");
     view.into_slice().expect("contiguous tensor")
 }

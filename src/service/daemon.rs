@@ -11,7 +11,7 @@ use crossbeam_channel::RecvTimeoutError;
 
 use super::notify::Notifier;
 use crate::config::Config;
-use crate::engine::{Bundle, Engine, Mask};
+use crate::engine::{Bundle, Engine};
 use crate::sinks::jsonl::JsonlLog;
 use crate::sinks::worker::{self, not_clear, SinkMsg};
 use crate::source::{self, SourceCounters};
@@ -31,12 +31,12 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     }
     signal_hook::flag::register(signal_hook::consts::SIGHUP, reload.clone())?;
 
-    let bundle = Arc::new(Bundle::load(&cfg.bundle, &cfg.engine.batch_sizes())?);
+    let bundle = Arc::new(Bundle::load(&cfg.bundle, &cfg.engine.settings.batch_sizes())?);
     cfg.check_bundle(config_path, &bundle).map_err(anyhow::Error::msg)?;
-    let mut engine = Engine::new(bundle.clone());
-    engine.set_mask(cfg.mask().map_err(anyhow::Error::msg)?);
+    let mut engine = Engine::new(bundle.clone(), cfg.engine.settings.clone())?;
+    engine.set_mask(cfg.mask()?);
     if let Some((w, h)) = cfg.frame_size() {
-        engine.prepare(w, h, &cfg.engine)?;
+        engine.prepare(w, h)?;
     }
     let log = JsonlLog::open(&cfg.log)
         .map_err(|e| anyhow::anyhow!("{}: cannot open the detection log: {e}", cfg.log.path.display()))?;
@@ -62,9 +62,8 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
             break;
         }
         if reload.swap(false, Ordering::Relaxed) {
-            match reload_config(config_path, &cfg, &bundle) {
-                Ok((new, mask)) => {
-                    engine.set_mask(mask);
+            match reload_config(config_path, &cfg, &mut engine) {
+                Ok(new) => {
                     sinks.send(SinkMsg::Reconfigure { log: new.log.clone(), evidence: new.evidence.clone() }).ok();
                     cfg = new;
                     log::info!("{}: configuration reloaded", config_path.display());
@@ -75,7 +74,7 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
         let msg = match running.frames.recv_timeout(TICK) {
             Ok(Ok(frame)) => {
                 let seed = cfg.engine.seed.wrapping_add(frame.seq);
-                match engine.analyze(&frame, &cfg.engine, seed) {
+                match engine.analyze(&frame, seed) {
                     Ok(report) => {
                         analysed += 1;
                         window_frames += 1;
@@ -117,16 +116,17 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     Ok(())
 }
 
-/// Loads the new config and checks it against what cannot change without a restart.
-fn reload_config(path: &Path, old: &Config, bundle: &Bundle) -> Result<(Config, Option<Mask>), String> {
+/// Loads the new config, checks it against what cannot change without a restart, and
+/// applies its settings and mask to the engine (plans for new settings are built here,
+/// between frames).
+fn reload_config(path: &Path, old: &Config, engine: &mut Engine) -> Result<Config, String> {
     let new = Config::load(path).map_err(|e| e.to_string())?;
-    new.check_bundle(path, bundle)?;
-    if new.bundle != old.bundle
-        || toml::to_string(&new.source).ok() != toml::to_string(&old.source).ok()
-        || new.max_pixels != old.max_pixels
-    {
+    new.check_bundle(path, engine.bundle())?;
+    if new.bundle != old.bundle || new.source != old.source || new.max_pixels != old.max_pixels {
         return Err(format!("{}: bundle, max_pixels and [source] change only with a restart", path.display()));
     }
     let mask = new.mask().map_err(|e| format!("{}: [mask] {e}", path.display()))?;
-    Ok((new, mask))
+    engine.set_settings(new.engine.settings.clone()).map_err(|e| format!("{}: [engine] {e}", path.display()))?;
+    engine.set_mask(mask);
+    Ok(new)
 }

@@ -23,7 +23,7 @@ pub enum AfterUse {
     Move,
 }
 
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "snake_case", deny_unknown_fields)]
 pub enum SourceConfig {
     /// A V4L2 camera.

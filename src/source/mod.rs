@@ -8,7 +8,7 @@ pub mod decode;
 pub mod feed;
 pub mod files;
 pub mod folder;
-pub mod scene;
+pub mod generated;
 pub mod yuv;
 
 use std::sync::atomic::AtomicBool;
@@ -20,11 +20,11 @@ use crossbeam_channel::Receiver;
 
 pub use config::{AfterUse, Overload, SourceConfig};
 pub use decode::{decode_bytes, decode_file, DecodeError, DEFAULT_MAX_PIXELS};
-pub use feed::{FrameError, Item, SourceCounters};
+pub use feed::{FrameError, Incoming, SourceCounters};
 
 /// A running source thread and the receiving end of its feed.
 pub struct Running {
-    pub frames: Receiver<Item>,
+    pub frames: Receiver<Incoming>,
     pub thread: JoinHandle<()>,
 }
 
@@ -64,7 +64,7 @@ pub fn start(
             spawn("source-files", Box::new(move || s.run(feed)))?
         }
         SourceConfig::Scene { width, height, fps, seed, count, .. } => {
-            let s = scene::SceneSource { width, height, fps, seed, count };
+            let s = generated::GeneratedSource { width, height, fps, seed, count };
             spawn("source-scene", Box::new(move || s.run(feed)))?
         }
         #[cfg(feature = "camera")]
