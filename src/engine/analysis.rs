@@ -1,216 +1,24 @@
-//! One frame through the engine: thumbnail, attention, the budgeted patch loop, the
-//! estimate and its uncertainty.
+//! The engine: one frame through its stages (thumbnail, attention, the budgeted patch
+//! loop, the head with the uncertainty) into a report.
 
-use std::collections::BTreeMap;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use image::RgbImage;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
-use serde::{Deserialize, Serialize};
 use tract_onnx::prelude::Tensor;
 
+use super::budget::{self, CostModel, Limits};
 use super::estimator::{CellOrder, EstimatorKind, Weights};
 use super::frame::Frame;
 use super::mask::{self, Mask, MaskError};
 use super::networks::{f32_slice, zeros, Bundle, BundleError};
 use super::patches::{Geometry, Normalizer};
+use super::report::{PatchUse, Report, StageTimes, StopReason};
+use super::settings::{Settings, SettingsError};
 use super::thumbnail::{area_reduce, thumbnail_size};
 use super::uncertainty::{probabilities, sample_psi, summarise, ClassResult};
-
-/// Per-frame knobs; the daemon reloads these without reloading the bundle.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields, default)]
-pub struct Settings {
-    /// Time allowed from the start of the thumbnail to the end of the head, in ms.
-    pub budget_ms: f64,
-    pub estimator: EstimatorKind,
-    /// Patches computed even when the deadline has passed (at least 1).
-    pub min_patches: usize,
-    /// Upper bound on patches per frame (also the number of draws for `replacement`).
-    pub max_patches: usize,
-    /// Patches per feature-network run.
-    pub batch: usize,
-    /// Gaussian samples of Psi for the uncertainty.
-    pub samples: usize,
-    /// Level of the central interval, e.g. 0.9 for 5 %–95 %.
-    pub interval: f64,
-    /// Per-class thresholds overriding the bundle's defaults.
-    pub thresholds: Option<Vec<f64>>,
-}
-
-impl Default for Settings {
-    fn default() -> Self {
-        Self {
-            budget_ms: 100.0,
-            estimator: EstimatorKind::Priority,
-            min_patches: 4,
-            max_patches: 256,
-            batch: 8,
-            samples: 64,
-            interval: 0.9,
-            thresholds: None,
-        }
-    }
-}
-
-/// A setting out of its range; [`SettingsError::field`] names the key.
-#[derive(Debug, Clone, PartialEq, thiserror::Error)]
-pub enum SettingsError {
-    #[error("budget_ms = {0}: expected a positive number of milliseconds")]
-    Budget(f64),
-    #[error("min_patches = 0: expected at least 1 (an estimate needs one patch)")]
-    MinPatches,
-    #[error("max_patches = {max} is below min_patches = {min}")]
-    MaxPatches { max: usize, min: usize },
-    #[error("batch = {0}: expected 1 to 256")]
-    Batch(usize),
-    #[error("interval = {0}: expected a level strictly between 0 and 1, e.g. 0.9")]
-    Interval(f64),
-    #[error("samples = 0: expected at least 1 Gaussian sample for the interval")]
-    Samples,
-    #[error("thresholds: expected one per class ({classes}), found {found}")]
-    ThresholdCount { classes: usize, found: usize },
-    #[error("thresholds: {0} is outside [0, 1]")]
-    ThresholdRange(f64),
-}
-
-impl SettingsError {
-    /// The settings key the error is about.
-    pub fn field(&self) -> &'static str {
-        match self {
-            Self::Budget(_) => "budget_ms",
-            Self::MinPatches => "min_patches",
-            Self::MaxPatches { .. } => "max_patches",
-            Self::Batch(_) => "batch",
-            Self::Interval(_) => "interval",
-            Self::Samples => "samples",
-            Self::ThresholdCount { .. } | Self::ThresholdRange(_) => "thresholds",
-        }
-    }
-}
-
-impl Settings {
-    /// Checks the values, and the threshold count when the class count is known.
-    pub fn check(&self, classes: Option<usize>) -> Result<(), SettingsError> {
-        if !(self.budget_ms > 0.0 && self.budget_ms.is_finite()) {
-            return Err(SettingsError::Budget(self.budget_ms));
-        }
-        if self.min_patches == 0 {
-            return Err(SettingsError::MinPatches);
-        }
-        if self.max_patches < self.min_patches {
-            return Err(SettingsError::MaxPatches { max: self.max_patches, min: self.min_patches });
-        }
-        if self.batch == 0 || self.batch > 256 {
-            return Err(SettingsError::Batch(self.batch));
-        }
-        if !(self.interval > 0.0 && self.interval < 1.0) {
-            return Err(SettingsError::Interval(self.interval));
-        }
-        if self.samples == 0 {
-            return Err(SettingsError::Samples);
-        }
-        if let Some(t) = &self.thresholds {
-            if let Some(classes) = classes.filter(|&c| c != t.len()) {
-                return Err(SettingsError::ThresholdCount { classes, found: t.len() });
-            }
-            if let Some(v) = t.iter().find(|v| !(0.0..=1.0).contains(*v)) {
-                return Err(SettingsError::ThresholdRange(*v));
-            }
-        }
-        Ok(())
-    }
-
-    /// Batch sizes the loop may use: powers of two below `batch`, and `batch`.
-    pub fn batch_sizes(&self) -> Vec<usize> {
-        let mut v: Vec<usize> = (0..).map(|e| 1usize << e).take_while(|&b| b < self.batch).collect();
-        v.push(self.batch);
-        v
-    }
-}
-
-/// Why the patch loop ended.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum StopReason {
-    /// The next batch would have passed the deadline.
-    Budget,
-    /// `max_patches` was reached.
-    MaxPatches,
-    /// Every cell with positive attention was examined.
-    AllCells,
-}
-
-/// One examined patch.
-#[derive(Clone, Debug, Serialize)]
-pub struct PatchUse {
-    /// Top-left corner in frame pixels (may be negative at the border).
-    pub x: i64,
-    pub y: i64,
-    pub size: u32,
-    pub row: usize,
-    pub col: usize,
-    /// The cell's attention after masking.
-    pub attention: f64,
-    /// Its weight in the estimate.
-    pub weight: f64,
-}
-
-#[derive(Clone, Debug, Default, Serialize)]
-pub struct StageTimes {
-    /// Set by callers that decode (the engine starts from a decoded frame).
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub decode: Option<f64>,
-    pub thumbnail: f64,
-    pub attention: f64,
-    /// Patch extraction and feature network runs.
-    pub patches: f64,
-    /// Gaussian samples, head and summary.
-    pub head: f64,
-    /// Thumbnail to head: the part the budget governs.
-    pub total: f64,
-    /// One-off plan building for a new frame size (outside the budget).
-    #[serde(skip_serializing_if = "is_zero")]
-    pub plan: f64,
-}
-
-fn is_zero(v: &f64) -> bool {
-    *v == 0.0
-}
-
-/// Everything the engine says about one frame.
-#[derive(Clone, Debug, Serialize)]
-pub struct Report {
-    pub seq: u64,
-    pub origin: String,
-    pub width: u32,
-    pub height: u32,
-    pub estimator: EstimatorKind,
-    /// RNG seed of this analysis: with the same seed and patch count it replays exactly.
-    pub seed: u64,
-    pub classes: Vec<ClassResult>,
-    pub patch_count: usize,
-    pub cells: usize,
-    /// Attention mass of the examined cells, `Σ_{i≤k} a_i`.
-    pub attention_mass: f64,
-    pub patches: Vec<PatchUse>,
-    pub times_ms: StageTimes,
-    pub budget_ms: f64,
-    pub budget_met: bool,
-    pub stop: StopReason,
-    /// Estimate of Psi (feature space), for replay checks and sweeps.
-    #[serde(skip)]
-    pub psi: Vec<f64>,
-    /// Attention per cell after masking, row-major over `geometry`.
-    #[serde(skip)]
-    pub attention: Vec<f64>,
-    #[serde(skip)]
-    pub geometry: Geometry,
-    #[serde(skip)]
-    pub thumbnail: RgbImage,
-}
 
 #[derive(Debug, thiserror::Error)]
 pub enum EngineError {
@@ -220,33 +28,6 @@ pub enum EngineError {
     Mask(#[from] MaskError),
     #[error("settings: {0}")]
     Settings(#[from] SettingsError),
-}
-
-/// Running estimates of what the next batch and the head will cost.
-struct CostModel {
-    per_patch: BTreeMap<usize, f64>,
-    /// Fixed part of the head stage (its network run), from the load-time dry run.
-    head_base: f64,
-    /// Part of the head stage that grows with the patches examined (the Gaussian samples).
-    head_per_patch: f64,
-}
-
-impl CostModel {
-    const KEEP: f64 = 0.7;
-    /// Safety factor on predicted costs: timing noise on a busy CPU is one-sided.
-    const MARGIN: f64 = 1.25;
-    /// Share of the budget held back for what the model does not predict (scheduling,
-    /// cache misses on the last batch).
-    const SLACK: f64 = 0.02;
-
-    fn update(slot: &mut f64, observed: f64) {
-        *slot = Self::KEEP * *slot + (1.0 - Self::KEEP) * observed;
-    }
-
-    /// Predicted head stage time after `k` patches.
-    fn head(&self, k: usize) -> f64 {
-        self.head_base + self.head_per_patch * k as f64
-    }
 }
 
 /// The thumbnail of a frame and the attention network's input made from it.
@@ -276,8 +57,8 @@ impl Engine {
     /// Checks `settings` against the bundle and builds the plans they need.
     pub fn new(bundle: Arc<Bundle>, settings: Settings) -> Result<Self, EngineError> {
         let norm = Normalizer::new(&bundle.manifest.normalization);
-        let per_patch = bundle.dry_run.per_patch.iter().map(|(b, t)| (*b, t.as_secs_f64())).collect();
-        let cost = CostModel { per_patch, head_base: bundle.dry_run.head.as_secs_f64(), head_per_patch: 0.0 };
+        let dry = &bundle.dry_run;
+        let cost = CostModel::new(dry.per_patch.iter().map(|(b, t)| (*b, t.as_secs_f64())), dry.head.as_secs_f64());
         let mut engine = Self { bundle, settings: Settings::default(), norm, cost, mask: None, mask_cache: None };
         engine.set_settings(settings)?;
         Ok(engine)
@@ -300,10 +81,10 @@ impl Engine {
         let p = m.patch_size as usize;
         for b in settings.batch_sizes() {
             self.bundle.features.plan(&[b, 3, p, p])?;
-            if !self.cost.per_patch.contains_key(&b) {
+            if !self.cost.knows(b) {
                 let t = Instant::now();
                 self.bundle.features.run(zeros(&[b, 3, p, p]))?;
-                self.cost.per_patch.insert(b, t.elapsed().as_secs_f64() / b as f64);
+                self.cost.observe_batch(b, t.elapsed().as_secs_f64() / b as f64);
             }
         }
         self.bundle.head.plan(&[settings.samples + 1, m.feature_dim])?;
@@ -352,15 +133,14 @@ impl Engine {
 
         let t = Instant::now();
         let order = CellOrder::new(s.estimator, &a, s.max_patches, &mut rng);
-        let (k, stop, feats) = self.patch_loop(frame, &geometry, &order, start + budget)?;
+        let (k, stop, feats) = self.patch_loop(frame, &geometry, &order, start)?;
         times.patches = ms(t.elapsed());
 
         let t = Instant::now();
         let weights = order.weights(k);
         let classes = self.head(&weights, &feats, &mut rng)?;
         let head_time = t.elapsed();
-        let per = (head_time.as_secs_f64() - self.cost.head_base).max(0.0) / k as f64;
-        CostModel::update(&mut self.cost.head_per_patch, per);
+        self.cost.observe_head(k, head_time.as_secs_f64());
         times.head = ms(head_time);
         let elapsed = start.elapsed();
         times.total = ms(elapsed);
@@ -465,52 +245,39 @@ impl Engine {
         Ok(Some(f))
     }
 
-    /// Computes features along the order until a stop condition; returns the number of
-    /// cells done, why it stopped and their feature rows.
+    /// Computes features along the order until the budget loop stops; returns the number
+    /// of cells done, why it stopped and their feature rows. `start` is when the budget
+    /// began.
     fn patch_loop(
         &mut self,
         frame: &Frame,
         g: &Geometry,
         order: &CellOrder,
-        deadline: Instant,
+        start: Instant,
     ) -> Result<(usize, StopReason, Vec<f32>), EngineError> {
-        let s = self.settings.clone();
-        let d = self.bundle.manifest.feature_dim;
+        let s = &self.settings;
         let exhaustive = order.kind() == EstimatorKind::Exhaustive;
-        let slack = CostModel::SLACK * s.budget_ms / 1000.0;
-        let limit = if exhaustive { order.len() } else { order.len().min(s.max_patches) };
-        let sizes = s.batch_sizes();
-        let mut feats = Vec::with_capacity(limit * d);
-        let mut k = 0;
-        let stop = loop {
-            if k == order.len() {
-                break StopReason::AllCells;
-            }
-            if k >= limit {
-                break StopReason::MaxPatches;
-            }
-            let want = s.batch.min(limit - k);
-            let fits = |b: usize| b <= want;
-            let nb = if exhaustive || k < s.min_patches {
-                // Whole batches up to min_patches, even past the deadline (reported as an overrun).
-                *sizes.iter().rev().find(|&&b| fits(b)).expect("batch size 1 always fits")
-            } else {
-                let left = deadline.saturating_duration_since(Instant::now()).as_secs_f64() - slack;
-                let cost = |b: usize| {
-                    CostModel::MARGIN
-                        * (b as f64 * self.cost.per_patch.get(&b).copied().unwrap_or(f64::MAX) + self.cost.head(k + b))
-                };
-                match sizes.iter().rev().find(|&&b| fits(b) && cost(b) <= left) {
-                    Some(&b) => b,
-                    None => break StopReason::Budget,
-                }
-            };
-            let t = Instant::now();
-            feats.extend(self.features(frame, g, &order.cells[k..k + nb])?);
-            let per = t.elapsed().as_secs_f64() / nb as f64;
-            CostModel::update(self.cost.per_patch.entry(nb).or_insert(per), per);
-            k += nb;
+        let seconds = s.budget_ms / 1000.0;
+        let limits = Limits {
+            cells: order.len(),
+            limit: if exhaustive { order.len() } else { order.len().min(s.max_patches) },
+            forced: if exhaustive { order.len() } else { s.min_patches },
+            sizes: s.batch_sizes(),
+            deadline: seconds,
+            slack: CostModel::SLACK * seconds,
         };
+        let mut feats = Vec::with_capacity(limits.limit * self.bundle.manifest.feature_dim);
+        let mut cost = self.cost.clone();
+        let (k, stop) = budget::run(
+            &limits,
+            &mut cost,
+            || start.elapsed().as_secs_f64(),
+            |first, n| {
+                feats.extend(self.features(frame, g, &order.cells[first..first + n])?);
+                Ok::<_, EngineError>(())
+            },
+        )?;
+        self.cost = cost;
         Ok((k, stop, feats))
     }
 }

@@ -6,21 +6,23 @@
 //! checks use exactly what the engine uses.
 
 mod analysis;
+mod budget;
 pub mod estimator;
 mod frame;
 mod mask;
 mod networks;
 pub mod patches;
+mod report;
+mod settings;
 pub mod thumbnail;
 pub mod uncertainty;
 
-pub use analysis::{
-    softmax, Attention, Engine, EngineError, PatchUse, Report, Settings, SettingsError, StageTimes, StopReason,
-    Thumbnail,
-};
+pub use analysis::{softmax, Attention, Engine, EngineError, Thumbnail};
 pub use estimator::{CellOrder, EstimatorKind, Weights};
 pub use frame::Frame;
 pub use mask::{Mask, MaskConfig, MaskError, Rect};
 pub use networks::{Bundle, BundleError, DryRunCosts, Network, NetworkProblem};
 pub use patches::{Geometry, Normalizer};
+pub use report::{PatchUse, Report, StageTimes, StopReason};
+pub use settings::{Settings, SettingsError};
 pub use uncertainty::{ClassResult, Outcome};
