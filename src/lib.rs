@@ -12,6 +12,7 @@ pub mod config;
 pub mod demo;
 pub mod engine;
 pub mod eval;
+pub mod folders;
 pub mod labels;
 pub mod onnx;
 pub mod service;

@@ -370,6 +370,76 @@ fn config_errors_name_file_line_and_field() {
     let t = format!("{text}\n[mask]\nignore = [{{ x = 2400, y = 0, width = 100, height = 10 }}]\n");
     assert!(err(&t).contains("outside the 2448×2048 frame"), "{}", err(&t));
     assert!(Config::parse(&text, &cfg).is_ok());
+
+    // A key that two tables share is located in the table the error is about: here
+    // [log] path (its folder would be under a file), not [source] path.
+    let inbox = s.path("inbox");
+    std::fs::create_dir_all(&inbox).unwrap();
+    std::fs::write(s.path("blocker"), b"x").unwrap();
+    let t = text
+        .replace("kind = \"scene\"", &format!("kind = \"folder\"\npath = {:?}", inbox.display().to_string()))
+        .replace(
+            &format!("path = {:?}", s.log().display().to_string()),
+            &format!("path = {:?}", s.path("blocker/log/detections.jsonl").display().to_string()),
+        );
+    let e = err(&t);
+    let log_line = t.lines().position(|l| l.contains("blocker/log")).unwrap() + 1;
+    assert!(
+        e.contains(&format!("saccade.toml:{log_line}:1:")) && e.contains("[log] path") && e.contains("not a folder"),
+        "{e}"
+    );
+    // The same in [engine]: a range error found after parsing points at its own key.
+    let t = text.replace("budget_ms = 100", "budget_ms = 100\nmin_patches = 9\nmax_patches = 8");
+    let e = err(&t);
+    assert!(e.contains(&format!(":{}:1:", line_of(&t, "max_patches"))) && e.contains("[engine] max_patches"), "{e}");
+}
+
+/// Every path under `dir`, sorted.
+fn listing(dir: &Path) -> Vec<PathBuf> {
+    let mut out = Vec::new();
+    let mut todo = vec![dir.to_path_buf()];
+    while let Some(d) = todo.pop() {
+        for e in std::fs::read_dir(&d).unwrap() {
+            let p = e.unwrap().path();
+            if p.is_dir() {
+                todo.push(p.clone());
+            }
+            out.push(p);
+        }
+    }
+    out.sort();
+    out
+}
+
+#[test]
+fn checking_a_config_writes_nothing_and_run_makes_its_folders() {
+    let s = Setup::new();
+    s.frames("inbox", 1, 320, 240);
+    let (done, evidence) = (s.path("done"), s.path("evidence/today"));
+    let source = format!(
+        "kind = \"folder\"\npath = {:?}\nafter = \"move\"\nmove_to = {:?}\nstable_ms = 100\npoll_ms = 50",
+        s.path("inbox").display().to_string(),
+        done.display().to_string()
+    );
+    let cfg = s.config(&source, "", "");
+    let text = std::fs::read_to_string(&cfg).unwrap();
+    std::fs::write(&cfg, format!("{text}\n[evidence]\nenabled = true\ndir = {:?}\n", evidence.display().to_string()))
+        .unwrap();
+    let before = listing(s.dir.path());
+
+    Config::load(&cfg).unwrap();
+    let out = Command::new(BIN).args(["check", "--config", cfg.to_str().unwrap()]).output().unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "{stderr}");
+    assert!(stderr.contains("run will create") && stderr.contains("evidence/today"), "{stderr}");
+    assert_eq!(listing(s.dir.path()), before, "checking the config wrote to disk");
+
+    let mut child = s.spawn(&cfg, &[]);
+    wait_for(60, "the frame record", || !kind(&s.records(), "frame").is_empty());
+    assert!(stop(&mut child).success(), "{}", s.stderr());
+    for dir in [done, evidence, s.log().parent().unwrap().to_path_buf()] {
+        assert!(dir.is_dir(), "run did not create {}", dir.display());
+    }
 }
 
 #[test]

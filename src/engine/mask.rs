@@ -43,11 +43,24 @@ impl MaskConfig {
             (None, true) => Ok(None),
         }
     }
+
+    /// Checks that the mask can be read and, when the frame size is known, that it fits.
+    pub fn check(&self, frame_size: Option<(u32, u32)>) -> Result<(), MaskError> {
+        if let Some(p) = self.image.as_ref().filter(|p| !p.is_file()) {
+            return Err(MaskError::ImageMissing(p.clone()));
+        }
+        match (self.load()?, frame_size) {
+            (Some(mask), Some((w, h))) => mask.check(w, h),
+            _ => Ok(()),
+        }
+    }
 }
 
 /// Why a mask cannot be used.
 #[derive(Debug, thiserror::Error)]
 pub enum MaskError {
+    #[error("image = {0:?}: file not found")]
+    ImageMissing(PathBuf),
     #[error("{}: cannot read the mask image: {source}", path.display())]
     Read { path: PathBuf, source: image::ImageError },
     #[error("give either image or ignore, not both")]
@@ -66,7 +79,7 @@ impl MaskError {
     /// The `[mask]` key the error is about.
     pub fn field(&self) -> &'static str {
         match self {
-            Self::Read { .. } | Self::ImageSize { .. } | Self::AllBlack => "image",
+            Self::ImageMissing(_) | Self::Read { .. } | Self::ImageSize { .. } | Self::AllBlack => "image",
             Self::Both | Self::Rect { .. } | Self::NothingLeft => "ignore",
         }
     }

@@ -1,8 +1,10 @@
 //! The `[log]` and `[evidence]` tables of the daemon's config.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
+
+use crate::folders::{self, FolderProblem};
 
 /// Which analysed frames get a record in the detection log.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
@@ -65,8 +67,9 @@ fn default_health() -> f64 {
     60.0
 }
 
+/// Keys left out take their defaults (the reference config lists them).
 #[derive(Clone, Debug, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
+#[serde(deny_unknown_fields, default)]
 pub struct EvidenceConfig {
     pub enabled: bool,
     /// Folder for evidence images (created if missing).
@@ -82,5 +85,65 @@ pub struct EvidenceConfig {
 impl Default for EvidenceConfig {
     fn default() -> Self {
         Self { enabled: false, dir: PathBuf::from("evidence"), quota_mb: 200.0, max_age_hours: 72.0, crops: 4 }
+    }
+}
+
+/// A `[log]` or `[evidence]` value that cannot be used; `field` names the key.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum SinkConfigError {
+    #[error("{field}: {problem}")]
+    Folder { field: &'static str, problem: FolderProblem },
+    #[error("{field} = {value}: expected a positive number")]
+    NotPositive { field: &'static str, value: f64 },
+    #[error("keep = 0: expected at least 1 rotated file")]
+    Keep,
+}
+
+impl SinkConfigError {
+    /// The key the error is about, within its table.
+    pub fn field(&self) -> &'static str {
+        match self {
+            Self::Folder { field, .. } | Self::NotPositive { field, .. } => field,
+            Self::Keep => "keep",
+        }
+    }
+}
+
+fn positive(field: &'static str, value: f64) -> Result<(), SinkConfigError> {
+    if value > 0.0 && value.is_finite() {
+        Ok(())
+    } else {
+        Err(SinkConfigError::NotPositive { field, value })
+    }
+}
+
+impl LogConfig {
+    /// The folder the log file lives in.
+    pub fn folder(&self) -> &Path {
+        self.path.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."))
+    }
+
+    /// Checks the values, and that the log's folder exists or can be made; writes nothing.
+    pub fn check(&self) -> Result<(), SinkConfigError> {
+        folders::check_writable(self.folder()).map_err(|problem| SinkConfigError::Folder { field: "path", problem })?;
+        positive("rotate_mb", self.rotate_mb)?;
+        if self.keep == 0 {
+            return Err(SinkConfigError::Keep);
+        }
+        positive("sync_interval_s", self.sync_interval_s)?;
+        positive("health_interval_s", self.health_interval_s)
+    }
+}
+
+impl EvidenceConfig {
+    /// Checks the values, and that the folder exists or can be made when evidence is on;
+    /// writes nothing.
+    pub fn check(&self) -> Result<(), SinkConfigError> {
+        if !self.enabled {
+            return Ok(());
+        }
+        folders::check_writable(&self.dir).map_err(|problem| SinkConfigError::Folder { field: "dir", problem })?;
+        positive("quota_mb", self.quota_mb)?;
+        positive("max_age_hours", self.max_age_hours)
     }
 }

@@ -1,8 +1,13 @@
 //! The `[source]` table of the daemon's config: which source, and its knobs.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
+
+use crate::folders::{self, FolderProblem};
+
+/// Pixel formats a camera may deliver that the source converts.
+pub const CAMERA_FORMATS: [&str; 3] = ["mjpeg", "yuyv", "nv12"];
 
 /// What a source does when analysis is busy and a new frame arrives.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
@@ -134,6 +139,130 @@ impl SourceConfig {
         match self {
             Self::Folder { overload, .. } | Self::Files { overload, .. } | Self::Scene { overload, .. } => *overload,
             Self::Camera { .. } => Overload::DropOldest,
+        }
+    }
+}
+
+/// A `[source]` value that cannot be used; [`SourceConfigError::field`] names the key.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum SourceConfigError {
+    #[error("{0} = 0: expected a positive number")]
+    Zero(&'static str),
+    #[error("formats: {0:?} is not one of \"mjpeg\", \"yuyv\", \"nv12\"")]
+    Format(String),
+    #[error("device = {0:?}: expected /dev/videoN")]
+    Device(String),
+    #[error("path = {0:?}: not a folder")]
+    NotAFolder(PathBuf),
+    #[error("after = \"move\" needs move_to = \"FOLDER\"")]
+    MoveWithoutFolder,
+    #[error("move_to: {0}")]
+    MoveTo(FolderProblem),
+    #[error("paths: expected at least one file or glob pattern")]
+    NoPaths,
+    #[error("rate_fps = {0}: expected 0 (as fast as possible) or a positive rate")]
+    Rate(f64),
+    #[error("{key} = {value}: a generated frame is at least 64 pixels wide and high")]
+    SceneSize { key: &'static str, value: u32 },
+    #[error("fps = {0}: expected a positive rate")]
+    Fps(f64),
+}
+
+impl SourceConfigError {
+    /// The `[source]` key the error is about.
+    pub fn field(&self) -> &'static str {
+        match self {
+            Self::Zero(key) | Self::SceneSize { key, .. } => key,
+            Self::Format(_) => "formats",
+            Self::Device(_) => "device",
+            Self::NotAFolder(_) => "path",
+            Self::MoveWithoutFolder => "after",
+            Self::MoveTo(_) => "move_to",
+            Self::NoPaths => "paths",
+            Self::Rate(_) => "rate_fps",
+            Self::Fps(_) => "fps",
+        }
+    }
+}
+
+/// `/dev/videoN` (or `N`) to the V4L2 index N.
+pub fn device_index(device: &str) -> Result<u32, SourceConfigError> {
+    device.trim_start_matches("/dev/video").parse().map_err(|_| SourceConfigError::Device(device.to_string()))
+}
+
+impl SourceConfig {
+    /// Checks the values, and that folders exist or can be made; writes nothing.
+    pub fn check(&self) -> Result<(), SourceConfigError> {
+        let positive = |key, v: u64| if v == 0 { Err(SourceConfigError::Zero(key)) } else { Ok(()) };
+        match self {
+            Self::Camera { device, width, height, fps, formats } => {
+                device_index(device)?;
+                positive("width", (*width).into())?;
+                positive("height", (*height).into())?;
+                positive("fps", (*fps).into())?;
+                if let Some(f) = formats.iter().find(|f| !CAMERA_FORMATS.contains(&f.as_str())) {
+                    return Err(SourceConfigError::Format(f.clone()));
+                }
+            }
+            Self::Folder { path, after, move_to, stable_ms, poll_ms, .. } => {
+                if !path.is_dir() {
+                    return Err(SourceConfigError::NotAFolder(path.clone()));
+                }
+                match (after, move_to) {
+                    (AfterUse::Move, None) => return Err(SourceConfigError::MoveWithoutFolder),
+                    (AfterUse::Move, Some(m)) => folders::check_writable(m).map_err(SourceConfigError::MoveTo)?,
+                    _ => {}
+                }
+                positive("stable_ms", *stable_ms)?;
+                positive("poll_ms", *poll_ms)?;
+            }
+            Self::Files { paths, rate_fps, .. } => {
+                if paths.is_empty() {
+                    return Err(SourceConfigError::NoPaths);
+                }
+                if !(*rate_fps >= 0.0 && rate_fps.is_finite()) {
+                    return Err(SourceConfigError::Rate(*rate_fps));
+                }
+            }
+            Self::Scene { width, height, fps, .. } => {
+                for (key, value) in [("width", *width), ("height", *height)] {
+                    if value < 64 {
+                        return Err(SourceConfigError::SceneSize { key, value });
+                    }
+                }
+                if !(*fps > 0.0 && fps.is_finite()) {
+                    return Err(SourceConfigError::Fps(*fps));
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// Folders `saccade run` creates before the source starts.
+    pub fn folders(&self) -> Vec<&Path> {
+        match self {
+            Self::Folder { after: AfterUse::Move, move_to: Some(m), .. } => vec![m.as_path()],
+            _ => vec![],
+        }
+    }
+
+    /// Makes relative paths relative to `base` (the config file's folder).
+    pub fn resolve_paths(&mut self, base: &Path) {
+        match self {
+            Self::Folder { path, move_to, .. } => {
+                *path = base.join(&*path);
+                if let Some(m) = move_to {
+                    *m = base.join(&*m);
+                }
+            }
+            Self::Files { paths, .. } => {
+                for p in paths.iter_mut() {
+                    if Path::new(p).is_relative() {
+                        *p = base.join(&*p).to_string_lossy().into_owned();
+                    }
+                }
+            }
+            Self::Camera { .. } | Self::Scene { .. } => {}
         }
     }
 }
