@@ -78,10 +78,16 @@ pub fn read_labels(path: &Path) -> Result<Vec<Labelled>, LabelError> {
         classes.sort();
         classes.dedup();
         if let Some(m) = l.defects.iter().find(|m| !classes.contains(&m.class)) {
-            return Err(err(Some(line), format!("defects: a {:?} mark, but \"classes\" does not list {:?}", m.class, m.class)));
+            return Err(err(
+                Some(line),
+                format!("defects: a {:?} mark, but \"classes\" does not list {:?}", m.class, m.class),
+            ));
         }
         if let Some(m) = l.defects.iter().find(|m| !(m.x.is_finite() && m.y.is_finite())) {
-            return Err(err(Some(line), format!("defects: position ({}, {}) is not a pair of finite numbers", m.x, m.y)));
+            return Err(err(
+                Some(line),
+                format!("defects: position ({}, {}) is not a pair of finite numbers", m.x, m.y),
+            ));
         }
         out.push(Labelled { frame: base.join(&l.frame), name: l.frame, classes, line, marks: l.defects });
     }

@@ -25,15 +25,13 @@ fn floats(v: &Value) -> Vec<f64> {
     v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
 }
 
+/// Truth, predictions and probabilities, one row per frame.
+type Case = (Vec<Vec<bool>>, Vec<Vec<bool>>, Vec<Vec<f64>>);
+
 /// A random case; `edges` puts probabilities on bin edges and 0/1, and fixes the columns
 /// scikit-learn treats specially (no positives and no predictions, no positives but
 /// predictions, positives but no predictions).
-fn case(
-    rng: &mut ChaCha8Rng,
-    frames: usize,
-    classes: usize,
-    edges: bool,
-) -> (Vec<Vec<bool>>, Vec<Vec<bool>>, Vec<Vec<f64>>) {
+fn case(rng: &mut ChaCha8Rng, frames: usize, classes: usize, edges: bool) -> Case {
     let mut truth = vec![vec![false; classes]; frames];
     let mut pred = vec![vec![false; classes]; frames];
     let mut probs = vec![vec![0.0; classes]; frames];
@@ -122,7 +120,9 @@ impl Set {
     fn new() -> Self {
         let bundle = common::designed_bundle(&DesignedParams::default());
         let dir = tempfile::tempdir().unwrap();
-        let frames: [(&str, Vec<(i64, i64, i64, u8)>, &[&str]); 6] = [
+        // (file, discs as (x, y, radius, grey level), labelled classes)
+        type Drawn<'a> = (&'a str, Vec<(i64, i64, i64, u8)>, &'a [&'a str]);
+        let frames: [Drawn; 6] = [
             ("dark.png", vec![(400, 200, 6, 30)], &["dark_spot"]),
             ("bright.png", vec![(200, 300, 6, 255)], &["bright_spot"]),
             ("plain.png", vec![], &[]),

@@ -100,10 +100,17 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
     let mut rand = |n: usize| -> Vec<f32> { (0..n).map(|_| rng.random_range(-2.0f32..2.0)).collect() };
     let s = &t.sampled;
     // Each network: (file, input name, NCHW/NC input, training-graph output).
-    let mut cases: Vec<(&str, &str, Vec<usize>, Vec<f32>, Vec<f32>)> = Vec::new();
+    type Case<'a> = (&'a str, &'a str, Vec<usize>, Vec<f32>, Vec<f32>);
+    let mut cases: Vec<Case> = Vec::new();
     let thumb = rand(32 * 48 * 3);
     let x = Act::new(1, 32, 48, 3, thumb.clone());
-    cases.push(("attention.onnx", "thumbnail", vec![1, 3, 32, 48], planar(&thumb, 1, 32, 48), s.attention.infer(x.clone()).data));
+    cases.push((
+        "attention.onnx",
+        "thumbnail",
+        vec![1, 3, 32, 48],
+        planar(&thumb, 1, 32, 48),
+        s.attention.infer(x.clone()).data,
+    ));
     let b = t.baseline.as_ref().unwrap();
     cases.push(("baseline.onnx", "thumbnail", vec![1, 3, 32, 48], planar(&thumb, 1, 32, 48), b.infer(x).data));
     let patches = rand(5 * 48 * 48 * 3);
@@ -129,7 +136,8 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
         jobs.push(json!({ "model": out.join(file), "input": input, "shape": shape, "data": data }));
     }
     // Reference: the ONNX checker (onnx, PyPI) and onnxruntime (PyPI), CPU, one thread.
-    let theirs: Value = serde_json::from_str(&common::run_reference("onnx_run.py", &[], &Value::Array(jobs).to_string())).unwrap();
+    let theirs: Value =
+        serde_json::from_str(&common::run_reference("onnx_run.py", &[], &Value::Array(jobs).to_string())).unwrap();
     for (((file, ..), ours), r) in cases.iter().zip(&tract_out).zip(theirs.as_array().unwrap()) {
         let r: Vec<f32> = r["data"].as_array().unwrap().iter().map(|v| v.as_f64().unwrap() as f32).collect();
         close(&format!("{file}: tract vs onnxruntime"), ours, &r);

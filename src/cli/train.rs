@@ -99,8 +99,11 @@ pub struct TrainArgs {
 }
 
 pub fn run(a: TrainArgs) -> anyhow::Result<ExitCode> {
-    if !(0.0..1.0).contains(&a.validation) || a.epochs == 0 || a.batch == 0 || a.top + a.tail == 0 || a.val_patches == 0 {
-        anyhow::bail!("--validation must be in [0, 1); --epochs, --batch, --val-patches and --top + --tail must be positive");
+    if !(0.0..1.0).contains(&a.validation) || a.epochs == 0 || a.batch == 0 || a.top + a.tail == 0 || a.val_patches == 0
+    {
+        anyhow::bail!(
+            "--validation must be in [0, 1); --epochs, --batch, --val-patches and --top + --tail must be positive"
+        );
     }
     if !(0.0..1.0).contains(&a.gain_jitter) || !(0.0..=128.0).contains(&a.offset_jitter) {
         anyhow::bail!("--gain-jitter must be in [0, 1) and --offset-jitter in [0, 128] grey levels");

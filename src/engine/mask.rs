@@ -167,7 +167,7 @@ pub fn apply(attention: &mut [f64], factors: &[f64]) -> Option<()> {
         *a *= f;
     }
     let total: f64 = attention.iter().sum();
-    if !(total > 0.0) {
+    if total.is_nan() || total <= 0.0 {
         return None;
     }
     attention.iter_mut().for_each(|a| *a /= total);

@@ -160,7 +160,9 @@ impl Dataset {
         let mut images = Vec::with_capacity(items.len());
         for (it, d) in items.iter().zip(decoded) {
             let image = d?;
-            if let Some((w, h, first)) = images.first().map(|(im, name): &(RgbImage, &str)| (im.width(), im.height(), *name)) {
+            if let Some((w, h, first)) =
+                images.first().map(|(im, name): &(RgbImage, &str)| (im.width(), im.height(), *name))
+            {
                 if (image.width(), image.height()) != (w, h) {
                     anyhow::bail!(
                         "{}:{}: {} is {}×{}, but {first} is {w}×{h}: train on frames of one size (the camera's)",
@@ -200,7 +202,15 @@ impl Dataset {
                 Sample { name: it.name.clone(), image, thumb, target: target.iter().map(|&b| b as u8 as f32).collect() }
             })
             .collect();
-        let geometry = Geometry { frame_w: w, frame_h: h, factor: shape.factor, stride: shape.stride, patch: shape.patch, rows, cols };
+        let geometry = Geometry {
+            frame_w: w,
+            frame_h: h,
+            factor: shape.factor,
+            stride: shape.stride,
+            patch: shape.patch,
+            rows,
+            cols,
+        };
         Ok(Self { samples, geometry, thumb_hw: (th, tw), norm: norm.clone() })
     }
 
@@ -208,8 +218,11 @@ impl Dataset {
     /// view's orientation.
     pub fn thumbnail(&self, i: usize, view: &View) -> Act {
         let (h, w) = self.thumb_hw;
-        let src: Vec<f32> =
-            self.samples[i].thumb.chunks_exact(3).flat_map(|px| (0..3).map(move |c| view.lut[c][px[c] as usize])).collect();
+        let src: Vec<f32> = self.samples[i]
+            .thumb
+            .chunks_exact(3)
+            .flat_map(|px| (0..3).map(move |c| view.lut[c][px[c] as usize]))
+            .collect();
         let (vh, vw) = view.shape(h, w);
         let mut dst = vec![0f32; src.len()];
         view.orient(&src, h, w, &mut dst);

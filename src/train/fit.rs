@@ -132,7 +132,8 @@ fn select(a: &[f64], top: usize, tail: usize, rng: &mut ChaCha8Rng) -> Selection
 /// Priority sampling (Duffield, Lund and Thorup, J. ACM 54(6), 2007) of `k` cells with
 /// the uniforms from `rng`: the engine's default estimator, here for validation.
 fn priority(a: &[f64], k: usize, rng: &mut ChaCha8Rng) -> Selection {
-    let mut q: Vec<(usize, f64)> = a.iter().enumerate().filter(|(_, &x)| x > 0.0).map(|(i, &x)| (i, x / (1.0 - rng.random::<f64>()))).collect();
+    let mut q: Vec<(usize, f64)> =
+        a.iter().enumerate().filter(|(_, &x)| x > 0.0).map(|(i, &x)| (i, x / (1.0 - rng.random::<f64>()))).collect();
     q.sort_by(|x, y| y.1.total_cmp(&x.1).then(x.0.cmp(&y.0)));
     let k = k.min(q.len());
     let tau = q.get(k).map_or(0.0, |x| x.1);
@@ -178,7 +179,14 @@ struct FramePass {
 }
 
 impl Sampled {
-    fn frame_forward(&self, data: &Dataset, i: usize, view: &View, pick: impl FnOnce(&[f64]) -> Selection, w: &mut Worker) -> FramePass {
+    fn frame_forward(
+        &self,
+        data: &Dataset,
+        i: usize,
+        view: &View,
+        pick: impl FnOnce(&[f64]) -> Selection,
+        w: &mut Worker,
+    ) -> FramePass {
         let scores = self.attention.forward(data.thumbnail(i, view), &mut w.at);
         let a = softmax(&scores.data);
         let sel = pick(&a);
@@ -206,7 +214,9 @@ impl Sampled {
         let d = dpsi.len();
         let mut df = vec![0f32; pass.f.len()];
         let mut da = Vec::with_capacity(pass.sel.cells.len());
-        for ((row, drow), (&wt, &slope)) in pass.f.chunks_exact(d).zip(df.chunks_exact_mut(d)).zip(pass.sel.weights.iter().zip(&pass.sel.slopes)) {
+        for ((row, drow), (&wt, &slope)) in
+            pass.f.chunks_exact(d).zip(df.chunks_exact_mut(d)).zip(pass.sel.weights.iter().zip(&pass.sel.slopes))
+        {
             let mut dot = 0.0f64;
             for ((g, &v), &dp) in drow.iter_mut().zip(row).zip(&dpsi) {
                 *g = (wt as f32) * dp;
@@ -268,7 +278,14 @@ fn parallel<T: Sync, S: Send, R: Send>(
 
 /// Probabilities and mean loss of the sampled model on `frames` with the engine's
 /// estimator: priority sampling of `k` cells, with draws fixed by `seed` and the frame.
-pub fn validate(m: &Sampled, data: &Dataset, frames: &[usize], k: usize, seed: u64, threads: usize) -> (Vec<Vec<f64>>, f64) {
+pub fn validate(
+    m: &Sampled,
+    data: &Dataset,
+    frames: &[usize],
+    k: usize,
+    seed: u64,
+    threads: usize,
+) -> (Vec<Vec<f64>>, f64) {
     let out = parallel(
         frames,
         threads,
@@ -282,7 +299,8 @@ pub fn validate(m: &Sampled, data: &Dataset, frames: &[usize], k: usize, seed: u
         },
     );
     let results: Vec<(Vec<f64>, f64)> = out.into_iter().flat_map(|(_, r)| r).collect();
-    let loss = results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
+    let loss =
+        results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
     (results.into_iter().map(|r| r.0).collect(), loss)
 }
 
@@ -300,14 +318,16 @@ pub fn validate_baseline(b: &Net, data: &Dataset, frames: &[usize], threads: usi
         },
     );
     let results: Vec<(Vec<f64>, f64)> = out.into_iter().flat_map(|(_, r)| r).collect();
-    let loss = results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
+    let loss =
+        results.iter().map(|r| r.1).sum::<f64>() / frames.len().max(1) as f64 / data.samples[0].target.len() as f64;
     (results.into_iter().map(|r| r.0).collect(), loss)
 }
 
 /// Macro F1 at probability 0.5.
 pub fn macro_f1(probs: &[Vec<f64>], data: &Dataset, frames: &[usize]) -> f64 {
     let pred: Vec<Vec<bool>> = probs.iter().map(|p| p.iter().map(|&v| v >= 0.5).collect()).collect();
-    let truth: Vec<Vec<bool>> = frames.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
+    let truth: Vec<Vec<bool>> =
+        frames.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
     crate::eval::metrics::f1(&truth, &pred).macro_f1
 }
 
@@ -330,7 +350,9 @@ impl Stage {
 }
 
 fn bar(bars: &MultiProgress, steps: usize, prefix: String) -> ProgressBar {
-    let style = ProgressStyle::with_template("{prefix} [{bar:30}] {pos}/{len} {msg} ({eta})").expect("valid template").progress_chars("=> ");
+    let style = ProgressStyle::with_template("{prefix} [{bar:30}] {pos}/{len} {msg} ({eta})")
+        .expect("valid template")
+        .progress_chars("=> ");
     let b = bars.add(ProgressBar::new(steps as u64)).with_style(style);
     b.set_prefix(prefix);
     b
@@ -409,7 +431,8 @@ pub fn fit_sampled(
         let b = bar(bars, steps, format!("{} epoch {epoch}/{epochs}", stage.name()));
         let mut total = 0.0;
         for chunk in order.chunks(o.batch) {
-            let jobs: Vec<(usize, View, u64)> = chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng), rng.random())).collect();
+            let jobs: Vec<(usize, View, u64)> =
+                chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng), rng.random())).collect();
             let scale = (chunk.len() * data.samples[0].target.len()) as f32;
             let model = &*m;
             let done = parallel(
@@ -441,7 +464,10 @@ pub fn fit_sampled(
             opt[1].step(&mut m.features, &gf, lr);
             opt[2].step(&mut m.head, &gh, lr);
             b.inc(1);
-            b.set_message(format!("loss {:.4}", total / (b.position() as f64 * o.batch as f64 * data.samples[0].target.len() as f64)));
+            b.set_message(format!(
+                "loss {:.4}",
+                total / (b.position() as f64 * o.batch as f64 * data.samples[0].target.len() as f64)
+            ));
         }
         b.finish_and_clear();
         let (probs, val_loss) = validate(m, data, val, o.val_patches, seed, o.threads);
@@ -495,7 +521,8 @@ pub fn fit_baseline(
         let b = bar(bars, steps, format!("baseline epoch {epoch}/{epochs}"));
         let mut total = 0.0;
         for chunk in order.chunks(o.batch) {
-            let jobs: Vec<(usize, View)> = chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng))).collect();
+            let jobs: Vec<(usize, View)> =
+                chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng))).collect();
             let scale = (chunk.len() * data.samples[0].target.len()) as f32;
             let model = &*net;
             let done = parallel(
@@ -529,7 +556,11 @@ pub fn fit_baseline(
             val_macro_f1: macro_f1(&probs, data, val),
             seconds: t0.elapsed().as_secs_f64(),
         };
-        log::info!("baseline epoch {epoch}: train loss {:.4}, validation loss {val_loss:.4}, validation macro F1 {:.3}", entry.train_loss, entry.val_macro_f1);
+        log::info!(
+            "baseline epoch {epoch}: train loss {:.4}, validation loss {val_loss:.4}, validation macro F1 {:.3}",
+            entry.train_loss,
+            entry.val_macro_f1
+        );
         log.push(entry);
         if keeper.epoch(net, val_loss, o.patience) {
             break;

@@ -76,10 +76,16 @@ const ATTENTION_CAP: f32 = 0.15;
 pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     let t0 = Instant::now();
     if model::halvings(o.shape.stride).is_none() {
-        anyhow::bail!("--cell-stride {}: the trained attention network needs a power of two, at least 2", o.shape.stride);
+        anyhow::bail!(
+            "--cell-stride {}: the trained attention network needs a power of two, at least 2",
+            o.shape.stride
+        );
     }
     if o.shape.patch == 0 || o.shape.patch % 8 != 0 {
-        anyhow::bail!("--patch-size {}: expected a positive multiple of 8 (the feature network halves it three times)", o.shape.patch);
+        anyhow::bail!(
+            "--patch-size {}: expected a positive multiple of 8 (the feature network halves it three times)",
+            o.shape.patch
+        );
     }
     let mut items = crate::labels::read_labels(&o.labels)?;
     if let Some(dir) = &o.frames {
@@ -87,12 +93,18 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     }
     let classes = if o.classes.is_empty() { crate::labels::all_classes(&items) } else { o.classes.clone() };
     if classes.is_empty() {
-        anyhow::bail!("{}: no frame names a class, so there is nothing to learn (or pass --classes)", o.labels.display());
+        anyhow::bail!(
+            "{}: no frame names a class, so there is nothing to learn (or pass --classes)",
+            o.labels.display()
+        );
     }
     let data = Dataset::load(&o.labels, &items, &classes, o.shape, &NORMALIZATION, o.max_pixels)?;
     let n = data.samples.len();
     if n < 2 {
-        anyhow::bail!("{}: at least 2 labelled frames are needed (one to train on, one to validate)", o.labels.display());
+        anyhow::bail!(
+            "{}: at least 2 labelled frames are needed (one to train on, one to validate)",
+            o.labels.display()
+        );
     }
     let mut rng = ChaCha8Rng::seed_from_u64(o.seed);
     let mut order: Vec<usize> = (0..n).collect();
@@ -126,7 +138,8 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     let (probs, loss_after) = validate(&m, &data, val, o.fit.val_patches, check_seed, o.fit.threads);
     log::info!("sampled model: validation loss {loss_before:.4} before training, {loss_after:.4} after");
 
-    let truth: Vec<Vec<bool>> = val.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
+    let truth: Vec<Vec<bool>> =
+        val.iter().map(|&i| data.samples[i].target.iter().map(|&t| t > 0.5).collect()).collect();
     let thresholds = choose_thresholds(&classes, &probs, &truth);
     let scored = f1(&truth, &predict(&probs, &thresholds));
     let baseline = o.baseline.then(|| {
@@ -138,8 +151,13 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
         let (p, _) = validate_baseline(b, &data, val, o.fit.threads);
         f1(&truth, &predict(&p, &choose_thresholds(&classes, &p, &truth))).macro_f1
     });
-    let held_out =
-        HeldOut { frames: val.len(), thresholds: thresholds.clone(), per_class_f1: scored.per_class, macro_f1: scored.macro_f1, baseline_macro_f1 };
+    let held_out = HeldOut {
+        frames: val.len(),
+        thresholds: thresholds.clone(),
+        per_class_f1: scored.per_class,
+        macro_f1: scored.macro_f1,
+        baseline_macro_f1,
+    };
     log::info!(
         "held out: macro F1 {:.3} (per class {}) at thresholds [{}]",
         held_out.macro_f1,
@@ -184,7 +202,11 @@ fn choose_thresholds(classes: &[String], probs: &[Vec<f64>], truth: &[Vec<bool>]
 }
 
 fn manifest(o: &TrainOptions, classes: &[String], thresholds: &[f64], description: &str) -> Manifest {
-    let net = |file: &str, input: &str, output: &str| NetworkRef { file: file.into(), input: input.into(), output: output.into() };
+    let net = |file: &str, input: &str, output: &str| NetworkRef {
+        file: file.into(),
+        input: input.into(),
+        output: output.into(),
+    };
     Manifest {
         format: FORMAT,
         name: o.name.clone(),
@@ -216,8 +238,9 @@ pub fn write_bundle(
 ) -> anyhow::Result<()> {
     use anyhow::Context;
     std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
-    let write =
-        |name: &str, bytes: Vec<u8>| std::fs::write(dir.join(name), bytes).with_context(|| format!("writing {}", dir.join(name).display()));
+    let write = |name: &str, bytes: Vec<u8>| {
+        std::fs::write(dir.join(name), bytes).with_context(|| format!("writing {}", dir.join(name).display()))
+    };
     let (d, c) = (m.feature_dim, m.classes.len());
     write("attention.onnx", model::attention_onnx(&s.attention))?;
     write("features.onnx", model::features_onnx(&s.features, m.patch_size as usize, d))?;

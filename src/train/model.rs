@@ -29,7 +29,8 @@ impl Arch {
     pub const PRESETS: [&'static str; 2] = ["standard", "small"];
 
     pub fn preset(name: &str) -> Option<Self> {
-        let standard = Self { attention: [8, 16, 16], features: [8, 16, 32, 32], head_hidden: 32, baseline: [12, 16, 32, 32] };
+        let standard =
+            Self { attention: [8, 16, 16], features: [8, 16, 32, 32], head_hidden: 32, baseline: [12, 16, 32, 32] };
         match name {
             "standard" => Some(standard),
             "small" => Some(Self { features: [8, 12, 24, 24], ..standard }),
@@ -145,7 +146,12 @@ pub const HEAD_EPS: f32 = 1e-3;
 pub fn head(rng: &mut ChaCha8Rng, a: &Arch, classes: usize) -> Net {
     let mut first = Conv::dense(rng, a.feature_dim(), a.head_hidden);
     first.b = small(rng, a.head_hidden, 0.1);
-    Net::new(vec![Layer::LogRelu(HEAD_EPS), Layer::Conv(first), Layer::Relu, Layer::Conv(Conv::dense(rng, a.head_hidden, classes))])
+    Net::new(vec![
+        Layer::LogRelu(HEAD_EPS),
+        Layer::Conv(first),
+        Layer::Relu,
+        Layer::Conv(Conv::dense(rng, a.head_hidden, classes)),
+    ])
 }
 
 /// The thumbnail-only comparison: a small CNN on the same thumbnail, trained with the

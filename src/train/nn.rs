@@ -183,7 +183,22 @@ impl Conv {
         let (m, kk, n) = (dy.n * oh * ow, self.k * self.k * self.cin, self.cout);
         // SAFETY: as in forward; aᵀ is a with its strides swapped.
         unsafe {
-            sgemm(kk, m, n, 1.0, a.as_ptr(), 1, kk as isize, dy.data.as_ptr(), n as isize, 1, 1.0, gw.as_mut_ptr(), n as isize, 1);
+            sgemm(
+                kk,
+                m,
+                n,
+                1.0,
+                a.as_ptr(),
+                1,
+                kk as isize,
+                dy.data.as_ptr(),
+                n as isize,
+                1,
+                1.0,
+                gw.as_mut_ptr(),
+                n as isize,
+                1,
+            );
         }
         for row in dy.data.chunks_exact(n) {
             for (g, v) in gb.iter_mut().zip(row) {
@@ -195,7 +210,22 @@ impl Conv {
         target.resize(m * kk, 0.0);
         // SAFETY: dy is m×n, Wᵀ is n×kk (W with its strides swapped), the target m×kk.
         unsafe {
-            sgemm(m, n, kk, 1.0, dy.data.as_ptr(), n as isize, 1, self.w.as_ptr(), 1, n as isize, 0.0, target.as_mut_ptr(), kk as isize, 1);
+            sgemm(
+                m,
+                n,
+                kk,
+                1.0,
+                dy.data.as_ptr(),
+                n as isize,
+                1,
+                self.w.as_ptr(),
+                1,
+                n as isize,
+                0.0,
+                target.as_mut_ptr(),
+                kk as isize,
+                1,
+            );
         }
         if !self.direct() {
             self.col2im(dcols, oh, ow, dx);
@@ -560,7 +590,9 @@ mod tests {
         let mut rng = ChaCha8Rng::seed_from_u64(5);
         let out = net.infer(x.clone());
         let r: Vec<f32> = (0..out.data.len()).map(|_| rng.random_range(-1.0f32..1.0)).collect();
-        let loss = |net: &Net, x: &Act| -> f64 { net.infer(x.clone()).data.iter().zip(&r).map(|(a, b)| (*a as f64) * (*b as f64)).sum() };
+        let loss = |net: &Net, x: &Act| -> f64 {
+            net.infer(x.clone()).data.iter().zip(&r).map(|(a, b)| (*a as f64) * (*b as f64)).sum()
+        };
         let mut tape = Tape::default();
         net.forward(x.clone(), &mut tape);
         let mut grads = net.grads();
@@ -600,7 +632,9 @@ mod tests {
 
     fn input(rng: &mut ChaCha8Rng, n: usize, h: usize, w: usize, c: usize) -> Act {
         // Values away from 0 and from each other, so ReLU kinks and max ties are not hit.
-        let data = (0..n * h * w * c).map(|_| rng.random_range(0.2f32..1.0) * if rng.random_bool(0.5) { 1.0 } else { -1.0 }).collect();
+        let data = (0..n * h * w * c)
+            .map(|_| rng.random_range(0.2f32..1.0) * if rng.random_bool(0.5) { 1.0 } else { -1.0 })
+            .collect();
         Act::new(n, h, w, c, data)
     }
 
