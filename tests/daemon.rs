@@ -453,6 +453,13 @@ fn shipped_configs_parse_and_check_prints_the_effective_config() {
     let text = std::fs::read_to_string(root.join("config/saccade.toml")).unwrap();
     let c: Config = toml::from_str(&text).unwrap();
     assert_eq!(c.log.keep, 5);
+    // The quick start runs on a fresh checkout: its bundle is the one in the source tree,
+    // and loading it creates nothing (demo-out/ is made by `run`).
+    let demo_out = root.join("demo-out");
+    let existed = demo_out.exists();
+    let demo = Config::load(&root.join("config/demo.toml")).unwrap();
+    assert!(demo.bundle.join("bundle.toml").is_file(), "{}", demo.bundle.display());
+    assert_eq!(demo_out.exists(), existed, "loading config/demo.toml created demo-out/");
     let s = Setup::new();
     s.frames("frames", 1, 320, 240);
     let cfg =

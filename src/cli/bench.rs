@@ -13,8 +13,8 @@ use saccade::demo::scene;
 use saccade::engine::thumbnail::{area_reduce_loop, area_reduce_simd};
 use saccade::engine::{Bundle, CellOrder, Engine, EstimatorKind, Settings};
 use saccade::sinks::jsonl::JsonlLog;
-use saccade::sinks::{LogConfig, RecordPolicy, SyncPolicy};
 use saccade::sinks::record::{rfc3339, FrameRecord, SCHEMA};
+use saccade::sinks::{LogConfig, RecordPolicy, SyncPolicy};
 use saccade::source::{decode_bytes, DEFAULT_MAX_PIXELS};
 use serde::Serialize;
 use tract_onnx::prelude::Tensor;
@@ -24,13 +24,16 @@ use super::demo::parse_size;
 /// Measure per-stage costs (min / median / max over repeats) on this machine.
 #[derive(Args)]
 pub struct BenchArgs {
+    /// Model bundle folder (holding bundle.toml).
     #[arg(long)]
     pub bundle: PathBuf,
     /// Frame to use; without it a demo frame of --size is generated and JPEG-encoded.
     #[arg(long)]
     pub frame: Option<PathBuf>,
+    /// Size of the generated frame as WIDTHxHEIGHT (without --frame).
     #[arg(long, default_value = "2448x2048", value_parser = parse_size)]
     pub size: (u32, u32),
+    /// Repeats of each stage; min, median and max are reported.
     #[arg(long, default_value_t = 15)]
     pub repeats: usize,
     /// Budgets (ms) for which to report the frame rate they allow.

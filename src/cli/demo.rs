@@ -17,13 +17,16 @@ pub struct DemoArgs {
     /// Folder for the generated bundle and frames.
     #[arg(long, default_value = "demo-out")]
     pub out: PathBuf,
+    /// Generated frames to write and analyse.
     #[arg(long, default_value_t = 4)]
     pub frames: usize,
+    /// Seed of the generated frames and of the analyses.
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
     /// Frame size as WIDTHxHEIGHT.
     #[arg(long, default_value = "2448x2048", value_parser = parse_size)]
     pub size: (u32, u32),
+    /// Time budget per frame in milliseconds.
     #[arg(long, default_value_t = Settings::default().budget_ms)]
     pub budget_ms: f64,
     /// Use the designed (untrained) bundle instead of the shipped trained one.
