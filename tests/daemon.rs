@@ -316,10 +316,12 @@ fn notifies_ready_watchdog_status_and_stopping() {
         }
     }
     signal(&child, libc::SIGTERM);
+    // Wait for the exit before reading the rest: on a loaded machine the last message
+    // may come later than any fixed wait; once the daemon is gone, all it sent is queued.
+    assert!(child.wait().unwrap().success());
     while let Ok(n) = sock.recv(&mut buf) {
         msgs.push(String::from_utf8_lossy(&buf[..n]).into_owned());
     }
-    assert!(child.wait().unwrap().success());
     // sd_notify(3): newline-separated assignments; READY=1 first, STOPPING=1 at the end.
     assert!(msgs[0].lines().any(|l| l == "READY=1"), "{msgs:?}");
     let pings = msgs.iter().filter(|m| m.lines().any(|l| l == "WATCHDOG=1")).count();
