@@ -14,16 +14,37 @@ struct Args {
 
 #[derive(Subcommand)]
 enum Command {
+    /// Analyse image files once and print one JSON report per image.
     Analyze(cli::analyze::AnalyzeArgs),
+    /// Write the demo bundle and generated frames, then analyse them (no camera needed).
     Demo(cli::demo::DemoArgs),
+    /// Measure the cost of each stage of the engine on this machine.
     Bench(cli::bench::BenchArgs),
+    /// Analyse labelled frames at several budgets and recommend the smallest good one.
     Sweep(cli::sweep::SweepArgs),
+    /// Test the feature network alone at labelled mark positions (a linear probe).
     Probe(cli::probe::ProbeArgs),
+    /// Write generated frames of the demo scenario and their labels.
     Scene(cli::scene::SceneArgs),
+    /// Train a bundle on the CPU from frames with frame-level labels.
     #[cfg(feature = "train")]
     Train(cli::train::TrainArgs),
+    /// Run the daemon: analyse frames from the configured source until stopped.
     Run(cli::run::ConfigArgs),
+    /// Check a config file, load its bundle, open its source once, print the effective config.
     Check(cli::run::ConfigArgs),
+}
+
+/// Commands that print to standard output end quietly when the reader goes away (`saccade
+/// demo | head`), as other Unix tools do: SIGPIPE ends the process. The daemon keeps the
+/// Rust default (the signal ignored, the write failing) so that a closed stderr cannot
+/// kill it.
+fn quiet_on_closed_pipe() {
+    // SAFETY: called first thing in main, before any other thread exists; restoring a
+    // signal's default disposition has no other effect on this process.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
 }
 
 /// Human-readable logs on stderr with RUST_LOG levels. Under a service manager (stderr not
@@ -53,8 +74,11 @@ fn init_logging() {
 }
 
 fn main() -> ExitCode {
-    init_logging();
     let args = Args::parse();
+    if !matches!(args.command, Command::Run(_)) {
+        quiet_on_closed_pipe();
+    }
+    init_logging();
     let result = match args.command {
         Command::Analyze(a) => cli::analyze::run(a),
         Command::Demo(a) => cli::demo::run(a),

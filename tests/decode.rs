@@ -12,7 +12,7 @@ fn jpeg() -> Vec<u8> {
     buf.into_inner()
 }
 
-fn decode(bytes: &[u8]) -> Result<saccade::source::Frame, DecodeError> {
+fn decode(bytes: &[u8]) -> Result<saccade::engine::Frame, DecodeError> {
     decode_bytes(bytes, "cam/frame-7.jpg".into(), 7, DEFAULT_MAX_PIXELS)
 }
 

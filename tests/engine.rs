@@ -9,9 +9,10 @@ use std::sync::Arc;
 use image::RgbImage;
 use saccade::demo::designed::{self, DesignedParams};
 use saccade::demo::scene;
-use saccade::engine::{Bundle, BundleError, Engine, EstimatorKind, Mask, Outcome, Rect, Settings, StopReason};
+use saccade::engine::{
+    Bundle, BundleError, Engine, EngineError, EstimatorKind, Frame, Mask, Outcome, Rect, Report, Settings, StopReason,
+};
 use saccade::onnx::writer::{Dim, GraphWriter};
-use saccade::source::Frame;
 
 fn load(dir: &Path) -> Result<Bundle, BundleError> {
     Bundle::load(dir, &Settings::default().batch_sizes())
@@ -19,8 +20,14 @@ fn load(dir: &Path) -> Result<Bundle, BundleError> {
 
 fn engine(params: &DesignedParams) -> (tempfile::TempDir, Engine) {
     let dir = common::designed_bundle(params);
-    let e = Engine::new(Arc::new(load(dir.path()).unwrap()));
+    let e = Engine::new(Arc::new(load(dir.path()).unwrap()), Settings::default()).unwrap();
     (dir, e)
+}
+
+/// Analyses `frame` with settings `s` (which the engine checks before anything runs).
+fn analyze(e: &mut Engine, frame: &Frame, s: &Settings, seed: u64) -> Result<Report, EngineError> {
+    e.set_settings(s.clone())?;
+    e.analyze(frame, seed)
 }
 
 /// A flat grey sheet with one dark disc of radius `r` at (`x`, `y`).
@@ -138,7 +145,7 @@ fn finds_a_dark_spot_and_looks_where_it_is() {
     let (_d, mut e) = engine(&DesignedParams::default());
     let frame = sheet_with_spot(640, 480, 400, 200, 6);
     let s = Settings { budget_ms: 10_000.0, min_patches: 16, max_patches: 16, ..Settings::default() };
-    let r = e.analyze(&frame, &s, 1).unwrap();
+    let r = analyze(&mut e, &frame, &s, 1).unwrap();
     assert_eq!(r.stop, StopReason::MaxPatches);
     assert_eq!(r.patch_count, 16);
     let dark = &r.classes[0];
@@ -149,7 +156,7 @@ fn finds_a_dark_spot_and_looks_where_it_is() {
     assert!(first.x <= 400 && 400 < first.x + 48 && first.y <= 200 && 200 < first.y + 48, "{first:?}");
     // A plain sheet is clear.
     let plain = Frame::new(1, "plain", RgbImage::from_pixel(640, 480, image::Rgb([150, 150, 150])));
-    let r = e.analyze(&plain, &s, 1).unwrap();
+    let r = analyze(&mut e, &plain, &s, 1).unwrap();
     assert!(r.classes.iter().all(|c| c.outcome == Outcome::Clear), "{r:?}");
 }
 
@@ -158,12 +165,12 @@ fn same_seed_and_patch_count_replays_exactly() {
     let (_d, mut e) = engine(&DesignedParams::default());
     let frame = Frame::new(0, "scene", scene::generate(800, 600, 3).image);
     let s = Settings { budget_ms: 10_000.0, min_patches: 24, max_patches: 24, ..Settings::default() };
-    let a = e.analyze(&frame, &s, 42).unwrap();
-    let b = e.analyze(&frame, &s, 42).unwrap();
+    let a = analyze(&mut e, &frame, &s, 42).unwrap();
+    let b = analyze(&mut e, &frame, &s, 42).unwrap();
     assert_eq!(serde_json::to_value(&a.classes).unwrap(), serde_json::to_value(&b.classes).unwrap());
     assert_eq!(serde_json::to_value(&a.patches).unwrap(), serde_json::to_value(&b.patches).unwrap());
     assert_eq!(a.psi, b.psi);
-    let c = e.analyze(&frame, &s, 43).unwrap();
+    let c = analyze(&mut e, &frame, &s, 43).unwrap();
     assert_ne!(serde_json::to_value(&a.patches).unwrap(), serde_json::to_value(&c.patches).unwrap());
 }
 
@@ -173,20 +180,20 @@ fn budget_loop_honours_min_and_max_and_all_cells() {
     let frame = Frame::new(0, "scene", scene::generate(1024, 768, 5).image);
     // A budget far too small: min_patches is still done, the overrun reported.
     let tight = Settings { budget_ms: 0.001, min_patches: 8, max_patches: 100, ..Settings::default() };
-    let r = e.analyze(&frame, &tight, 1).unwrap();
+    let r = analyze(&mut e, &frame, &tight, 1).unwrap();
     assert_eq!((r.patch_count, r.stop, r.budget_met), (8, StopReason::Budget, false));
     // Generous budget: max_patches bounds the work.
     let capped = Settings { budget_ms: 60_000.0, min_patches: 1, max_patches: 37, ..Settings::default() };
-    let r = e.analyze(&frame, &capped, 1).unwrap();
+    let r = analyze(&mut e, &frame, &capped, 1).unwrap();
     assert_eq!((r.patch_count, r.stop), (37, StopReason::MaxPatches));
     // Exhaustive: every cell, whatever the budget.
     let dense = Settings { estimator: EstimatorKind::Exhaustive, budget_ms: 0.001, ..Settings::default() };
-    let r = e.analyze(&frame, &dense, 1).unwrap();
+    let r = analyze(&mut e, &frame, &dense, 1).unwrap();
     assert_eq!((r.patch_count, r.stop), (r.cells, StopReason::AllCells));
     assert!((r.attention_mass - 1.0).abs() < 1e-9);
     // Priority over every cell gives the exhaustive estimate.
     let all = Settings { budget_ms: 60_000.0, max_patches: 100_000, ..Settings::default() };
-    let p = e.analyze(&frame, &all, 9).unwrap();
+    let p = analyze(&mut e, &frame, &all, 9).unwrap();
     assert_eq!((p.patch_count, p.stop), (r.cells, StopReason::AllCells));
     for (x, y) in p.psi.iter().zip(&r.psi) {
         assert!((x - y).abs() < 1e-9, "{x} vs {y}");
@@ -201,8 +208,8 @@ fn a_realistic_budget_stops_on_time() {
     let (_d, mut e) = engine(&DesignedParams::default());
     let frame = Frame::new(0, "scene", scene::generate(2448, 2048, 11).image);
     let s = Settings { budget_ms: 30.0, min_patches: 1, max_patches: 100_000, ..Settings::default() };
-    e.analyze(&frame, &s, 1).unwrap(); // warm the cost estimates
-    let r = e.analyze(&frame, &s, 2).unwrap();
+    analyze(&mut e, &frame, &s, 1).unwrap(); // warm the cost estimates
+    let r = analyze(&mut e, &frame, &s, 2).unwrap();
     // The loop stopped for the budget, well before the 4864 cells; no timing is asserted.
     assert_eq!(r.stop, StopReason::Budget);
     assert!(r.patch_count >= 1 && r.patch_count < r.cells);
@@ -214,8 +221,8 @@ fn mask_removes_attention_from_ignored_zones() {
     let frame = sheet_with_spot(640, 480, 400, 200, 6);
     let s = Settings { budget_ms: 10_000.0, min_patches: 16, max_patches: 16, ..Settings::default() };
     e.set_mask(Some(Mask::Ignore(vec![Rect { x: 320, y: 128, width: 160, height: 160 }])));
-    let r = e.analyze(&frame, &s, 1).unwrap();
-    let g = r.geometry.unwrap();
+    let r = analyze(&mut e, &frame, &s, 1).unwrap();
+    let g = r.geometry;
     for (i, a) in r.attention.iter().enumerate() {
         let (x0, y0, x1, y1) = g.footprint(i);
         if x0 >= 320 && x1 <= 480 && y0 >= 128 && y1 <= 288 {
@@ -226,7 +233,7 @@ fn mask_removes_attention_from_ignored_zones() {
     assert_eq!(r.classes[0].outcome, Outcome::Clear, "{r:?}");
     // A mask that reaches outside the frame is refused with a clear error.
     e.set_mask(Some(Mask::Ignore(vec![Rect { x: 600, y: 0, width: 100, height: 10 }])));
-    let err = e.analyze(&frame, &s, 1).unwrap_err().to_string();
+    let err = analyze(&mut e, &frame, &s, 1).unwrap_err().to_string();
     assert!(err.contains("outside the 640×480 frame"), "{err}");
 }
 
@@ -234,20 +241,20 @@ fn mask_removes_attention_from_ignored_zones() {
 fn bad_settings_are_refused() {
     let (_d, mut e) = engine(&DesignedParams::default());
     let frame = sheet_with_spot(200, 200, 100, 100, 3);
-    let err = e.analyze(&frame, &Settings { min_patches: 0, ..Settings::default() }, 1).unwrap_err().to_string();
+    let err = analyze(&mut e, &frame, &Settings { min_patches: 0, ..Settings::default() }, 1).unwrap_err().to_string();
     assert!(err.contains("min_patches"), "{err}");
-    let err = e.analyze(&frame, &Settings { budget_ms: -1.0, ..Settings::default() }, 1).unwrap_err().to_string();
+    let err = analyze(&mut e, &frame, &Settings { budget_ms: -1.0, ..Settings::default() }, 1).unwrap_err().to_string();
     assert!(err.contains("budget_ms"), "{err}");
 }
 
 #[test]
 fn evidence_keeps_its_quota_and_switches_off_when_it_cannot_write() {
-    use saccade::config::EvidenceConfig;
     use saccade::sinks::evidence::Evidence;
+    use saccade::sinks::EvidenceConfig;
     let (_d, mut e) = engine(&DesignedParams::default());
     let frame = sheet_with_spot(640, 480, 400, 200, 6);
     let s = Settings { budget_ms: 10_000.0, min_patches: 16, max_patches: 16, ..Settings::default() };
-    let report = e.analyze(&frame, &s, 1).unwrap();
+    let report = analyze(&mut e, &frame, &s, 1).unwrap();
     let dir = tempfile::tempdir().unwrap();
     let cfg =
         EvidenceConfig { enabled: true, dir: dir.path().join("ev"), quota_mb: 0.05, max_age_hours: 1.0, crops: 3 };

@@ -4,8 +4,8 @@
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::StandardNormal;
-use saccade::engine::bundle::Activation;
-use saccade::engine::estimator::{EstimatorKind, Plan};
+use saccade::bundle::Activation;
+use saccade::engine::estimator::{CellOrder, EstimatorKind};
 use saccade::engine::uncertainty::{probabilities, sample_psi, summarise};
 
 struct Problem {
@@ -33,12 +33,12 @@ fn problem(n: usize, d: usize, spread: f64, seed: u64) -> Problem {
     Problem { a, f, d, psi }
 }
 
-/// Feature rows of the first `k` cells of a plan's order.
-fn rows(p: &Problem, plan: &Plan, k: usize) -> Vec<f32> {
-    plan.order[..k].iter().flat_map(|&i| p.f[i * p.d..(i + 1) * p.d].iter().copied()).collect()
+/// Feature rows of the first `k` cells of an order.
+fn rows(p: &Problem, order: &CellOrder, k: usize) -> Vec<f32> {
+    order.cells[..k].iter().flat_map(|&i| p.f[i * p.d..(i + 1) * p.d].iter().copied()).collect()
 }
 
-/// Over `draws` seeded plans stopped at `k`: the mean estimate is within 4 standard
+/// Over `draws` seeded orders stopped at `k`: the mean estimate is within 4 standard
 /// errors of Psi in every dimension, and the mean covariance estimate agrees with the
 /// empirical covariance of the estimates within 4 combined standard errors per entry.
 fn check_unbiased(p: &Problem, kind: EstimatorKind, k: usize, n_draws: usize, draws: usize) {
@@ -47,10 +47,10 @@ fn check_unbiased(p: &Problem, kind: EstimatorKind, k: usize, n_draws: usize, dr
     let mut est = Vec::with_capacity(draws);
     let mut covs = Vec::with_capacity(draws);
     for _ in 0..draws {
-        let plan = Plan::new(kind, &p.a, n_draws, &mut rng);
-        let k = k.min(plan.len());
-        let f = rows(p, &plan, k);
-        let w = plan.weights(k);
+        let order = CellOrder::new(kind, &p.a, n_draws, &mut rng);
+        let k = k.min(order.len());
+        let f = rows(p, &order, k);
+        let w = order.weights(k);
         est.push(w.estimate(&f, d));
         covs.push(w.covariance(&f, d));
     }
@@ -104,17 +104,17 @@ fn replacement_is_unbiased_with_all_draws_and_when_stopped_early() {
 fn priority_with_every_cell_equals_exhaustive() {
     let p = problem(30, 4, 2.0, 3);
     let mut rng = ChaCha8Rng::seed_from_u64(9);
-    let plan = Plan::new(EstimatorKind::Priority, &p.a, 0, &mut rng);
-    let exact = Plan::new(EstimatorKind::Exhaustive, &p.a, 0, &mut rng);
-    let (w, we) = (plan.weights(plan.len()), exact.weights(exact.len()));
+    let order = CellOrder::new(EstimatorKind::Priority, &p.a, 0, &mut rng);
+    let exact = CellOrder::new(EstimatorKind::Exhaustive, &p.a, 0, &mut rng);
+    let (w, we) = (order.weights(order.len()), exact.weights(exact.len()));
     assert_eq!(w.tau, Some(0.0));
     // Each cell's weight is exactly its attention, and no variance is left.
-    for (j, &i) in plan.order.iter().enumerate() {
+    for (j, &i) in order.cells.iter().enumerate() {
         assert_eq!(w.w[j], p.a[i]);
         assert_eq!(w.c[j], 0.0);
     }
     let (psi, psi_e) =
-        (w.estimate(&rows(&p, &plan, plan.len()), p.d), we.estimate(&rows(&p, &exact, exact.len()), p.d));
+        (w.estimate(&rows(&p, &order, order.len()), p.d), we.estimate(&rows(&p, &exact, exact.len()), p.d));
     for c in 0..p.d {
         // Same terms, summed in another order.
         assert!((psi[c] - psi_e[c]).abs() < 1e-12 && (psi_e[c] - p.psi[c]).abs() < 1e-12);
@@ -129,15 +129,15 @@ fn certain_cells_carry_no_variance() {
     a[7] = 0.7;
     let mut rng = ChaCha8Rng::seed_from_u64(4);
     for _ in 0..200 {
-        let plan = Plan::new(EstimatorKind::Priority, &a, 0, &mut rng);
-        let j = plan.order.iter().position(|&i| i == 7).unwrap();
+        let order = CellOrder::new(EstimatorKind::Priority, &a, 0, &mut rng);
+        let j = order.cells.iter().position(|&i| i == 7).unwrap();
         assert!(j < 10, "the dominant cell came {j}th");
-        let w = plan.weights(10);
+        let w = order.weights(10);
         assert!(w.tau.unwrap() < 0.7);
         assert_eq!((w.w[j], w.c[j]), (0.7, 0.0));
         // Tail cells below tau get the larger weight tau and positive variance.
-        let tail = (0..10).find(|&m| plan.order[m] != 7).unwrap();
-        assert!(w.w[tail] > a[plan.order[tail]] && w.c[tail] > 0.0);
+        let tail = (0..10).find(|&m| order.cells[m] != 7).unwrap();
+        assert!(w.w[tail] > a[order.cells[tail]] && w.c[tail] > 0.0);
     }
 }
 
@@ -160,10 +160,10 @@ fn coverage(kind: EstimatorKind, k: usize, draws: usize) -> Vec<f64> {
     let mut rng = ChaCha8Rng::seed_from_u64(77);
     let mut hits = vec![0usize; classes];
     for _ in 0..draws {
-        let plan = Plan::new(kind, &p.a, k, &mut rng);
-        let kk = k.min(plan.len());
-        let f = rows(&p, &plan, kk);
-        let weights = plan.weights(kk);
+        let order = CellOrder::new(kind, &p.a, k, &mut rng);
+        let kk = k.min(order.len());
+        let f = rows(&p, &order, kk);
+        let weights = order.weights(kk);
         let samples = sample_psi(&weights, &f, d, 200, &mut rng);
         let probs = probabilities(&head(&samples), classes, Activation::Sigmoid);
         for (c, r) in summarise(&probs, &names, &[0.5, 0.5], 0.9).iter().enumerate() {

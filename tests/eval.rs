@@ -25,15 +25,13 @@ fn floats(v: &Value) -> Vec<f64> {
     v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
 }
 
+/// Truth, predictions and probabilities, one row per frame.
+type Case = (Vec<Vec<bool>>, Vec<Vec<bool>>, Vec<Vec<f64>>);
+
 /// A random case; `edges` puts probabilities on bin edges and 0/1, and fixes the columns
 /// scikit-learn treats specially (no positives and no predictions, no positives but
 /// predictions, positives but no predictions).
-fn case(
-    rng: &mut ChaCha8Rng,
-    frames: usize,
-    classes: usize,
-    edges: bool,
-) -> (Vec<Vec<bool>>, Vec<Vec<bool>>, Vec<Vec<f64>>) {
+fn case(rng: &mut ChaCha8Rng, frames: usize, classes: usize, edges: bool) -> Case {
     let mut truth = vec![vec![false; classes]; frames];
     let mut pred = vec![vec![false; classes]; frames];
     let mut probs = vec![vec![0.0; classes]; frames];
@@ -122,7 +120,9 @@ impl Set {
     fn new() -> Self {
         let bundle = common::designed_bundle(&DesignedParams::default());
         let dir = tempfile::tempdir().unwrap();
-        let frames: [(&str, Vec<(i64, i64, i64, u8)>, &[&str]); 6] = [
+        // (file, discs as (x, y, radius, grey level), labelled classes)
+        type Drawn<'a> = (&'a str, Vec<(i64, i64, i64, u8)>, &'a [&'a str]);
+        let frames: [Drawn; 6] = [
             ("dark.png", vec![(400, 200, 6, 30)], &["dark_spot"]),
             ("bright.png", vec![(200, 300, 6, 255)], &["bright_spot"]),
             ("plain.png", vec![], &[]),
@@ -164,7 +164,7 @@ impl Set {
     }
 
     /// Labels of the set in the designed bundle's class order, and the frames.
-    fn truth_and_frames(&self) -> (Vec<Vec<bool>>, Vec<saccade::source::Frame>) {
+    fn truth_and_frames(&self) -> (Vec<Vec<bool>>, Vec<saccade::engine::Frame>) {
         let classes = ["dark_spot", "bright_spot"];
         std::fs::read_to_string(self.path("labels.jsonl"))
             .unwrap()
@@ -277,13 +277,11 @@ fn sweep_exhaustive_row_matches_a_plain_exhaustive_analysis() {
     // The same frames through Engine::analyze, exhaustive, scored separately.
     let bundle = Arc::new(Bundle::load(&set.bundle, &Settings::default().batch_sizes()).unwrap());
     let thresholds = bundle.manifest.thresholds.clone();
-    let mut engine = Engine::new(bundle);
     let dense = Settings { estimator: EstimatorKind::Exhaustive, ..Settings::default() };
+    let mut engine = Engine::new(bundle, dense).unwrap();
     let (truth, frames) = set.truth_and_frames();
-    let probs: Vec<Vec<f64>> = frames
-        .iter()
-        .map(|f| engine.analyze(f, &dense, 9).unwrap().classes.iter().map(|c| c.probability).collect())
-        .collect();
+    let probs: Vec<Vec<f64>> =
+        frames.iter().map(|f| engine.analyze(f, 9).unwrap().classes.iter().map(|c| c.probability).collect()).collect();
     let f = metrics::f1(&truth, &metrics::predict(&probs, &thresholds));
     assert!(f.macro_f1 < 1.0, "the mislabelled frame costs F1: {f:?}");
     assert!((num(ex, "macro_f1") - f.macro_f1).abs() < 1e-12, "sweep {} vs plain {}", num(ex, "macro_f1"), f.macro_f1);

@@ -7,7 +7,7 @@ mod common;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use saccade::demo::designed::{self, DesignedParams};
-use saccade::engine::estimator::Plan;
+use saccade::engine::estimator::CellOrder;
 use saccade::engine::thumbnail::{area_reduce, area_reduce_loop};
 use saccade::onnx::writer::{Dim, GraphWriter};
 use serde_json::{json, Value};
@@ -36,12 +36,12 @@ fn priority_weights_agree_with_numpy_reference() {
     });
     let out: Value =
         serde_json::from_str(&common::run_reference("priority_sampling.py", &[], &req.to_string())).unwrap();
-    let plan = Plan::priority_with_uniforms(&a, &u);
-    assert_eq!(plan.len(), 55, "zero-attention cells are never processed");
+    let order = CellOrder::priority_with_uniforms(&a, &u);
+    assert_eq!(order.len(), 55, "zero-attention cells are never processed");
     for (r, &k) in out.as_array().unwrap().iter().zip(&ks) {
         let cells: Vec<usize> = r["cells"].as_array().unwrap().iter().map(|c| c.as_u64().unwrap() as usize).collect();
-        assert_eq!(&plan.order[..k], &cells[..], "k={k}: processing order");
-        let w = plan.weights(k);
+        assert_eq!(&order.cells[..k], &cells[..], "k={k}: processing order");
+        let w = order.weights(k);
         let rows: Vec<f32> = cells.iter().flat_map(|&i| f[i * d..(i + 1) * d].iter().copied()).collect();
         let pairs = [
             (w.w.clone(), floats(&r["w"])),

@@ -5,9 +5,8 @@
 use std::sync::Arc;
 
 use saccade::demo::{scene, shipped};
-use saccade::engine::{Bundle, Engine, Settings};
+use saccade::engine::{Bundle, Engine, Frame, Settings};
 use saccade::eval::metrics::f1;
-use saccade::source::Frame;
 
 #[test]
 fn the_shipped_bundle_finds_the_placed_defects() {
@@ -17,10 +16,10 @@ fn the_shipped_bundle_finds_the_placed_defects() {
     let classes = bundle.manifest.classes.clone();
     let bundle = Arc::new(bundle);
     let thresholds = bundle.manifest.thresholds.clone();
-    let mut engine = Engine::new(bundle.clone());
     // No time budget here: the machine running tests is shared, and the question is what
     // the model sees, not how fast (`saccade sweep` measures that).
     let settings = Settings { budget_ms: 60_000.0, ..Settings::default() };
+    let mut engine = Engine::new(bundle.clone(), settings).unwrap();
     let (mut truth, mut said, mut thumb_said) = (Vec::new(), Vec::new(), Vec::new());
     for n in 0..40u64 {
         let seed = 900_000 + n;
@@ -28,7 +27,7 @@ fn the_shipped_bundle_finds_the_placed_defects() {
         let placed = f.classes();
         let baseline = bundle.baseline_probabilities(&f.image).unwrap().unwrap();
         thumb_said.push(baseline.iter().zip(&thresholds).map(|(p, t)| p >= t).collect::<Vec<bool>>());
-        let report = engine.analyze(&Frame::new(n, format!("scene:{seed}"), f.image), &settings, seed).unwrap();
+        let report = engine.analyze(&Frame::new(n, format!("scene:{seed}"), f.image), seed).unwrap();
         said.push(report.classes.iter().map(|c| c.probability >= c.threshold).collect::<Vec<bool>>());
         truth.push(classes.iter().map(|c| placed.contains(&c.as_str())).collect::<Vec<bool>>());
     }

@@ -100,7 +100,8 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
     let mut rand = |n: usize| -> Vec<f32> { (0..n).map(|_| rng.random_range(-2.0f32..2.0)).collect() };
     let s = &t.sampled;
     // Each network: (file, input name, NCHW/NC input, training-graph output).
-    let mut cases: Vec<(&str, &str, Vec<usize>, Vec<f32>, Vec<f32>)> = Vec::new();
+    type Case<'a> = (&'a str, &'a str, Vec<usize>, Vec<f32>, Vec<f32>);
+    let mut cases: Vec<Case> = Vec::new();
     let thumb = rand(32 * 48 * 3);
     let x = Act::new(1, 32, 48, 3, thumb.clone());
     cases.push((
@@ -158,7 +159,7 @@ fn a_stage_that_only_hurts_keeps_the_entry_weights() {
     let labels = scene(dir.path(), 8, 70);
     let o = options(labels.clone(), dir.path().join("unused"));
     let items = saccade::labels::read_labels(&labels).unwrap();
-    let norm = saccade::engine::bundle::Normalization { mean: [0.5; 3], std: [0.25; 3] };
+    let norm = saccade::bundle::Normalization { mean: [0.5; 3], std: [0.25; 3] };
     let data = Dataset::load(&labels, &items, &o.classes, o.shape, &norm, 1 << 24).unwrap();
     let mut rng = ChaCha8Rng::seed_from_u64(1);
     let mut m = saccade::train::fit::Sampled {

@@ -18,6 +18,9 @@ pub struct AnalyzeArgs {
     pub images: Vec<PathBuf>,
     #[command(flatten)]
     pub engine: EngineArgs,
+    /// Refuse images with more pixels than this (checked from the header).
+    #[arg(long, default_value_t = DEFAULT_MAX_PIXELS)]
+    pub max_pixels: u64,
 }
 
 /// Options shared by the commands that run the engine.
@@ -48,8 +51,10 @@ pub struct EngineArgs {
 /// Engine options shared by `analyze` and `sweep`.
 #[derive(Args, Clone)]
 pub struct EngineLimits {
+    /// Patches examined even past the deadline.
     #[arg(long, default_value_t = Settings::default().min_patches)]
     pub min_patches: usize,
+    /// Most patches examined per frame.
     #[arg(long, default_value_t = Settings::default().max_patches)]
     pub max_patches: usize,
     /// Patches per feature-network run.
@@ -58,9 +63,6 @@ pub struct EngineLimits {
     /// Gaussian samples of the estimate for the uncertainty.
     #[arg(long, default_value_t = Settings::default().samples)]
     pub samples: usize,
-    /// Refuse images with more pixels than this (checked from the header).
-    #[arg(long, default_value_t = DEFAULT_MAX_PIXELS)]
-    pub max_pixels: u64,
 }
 
 impl EngineLimits {
@@ -86,30 +88,29 @@ impl EngineArgs {
         }
     }
 
-    /// Loads the bundle and builds an engine with the mask, after checking the settings.
-    pub fn engine(&self) -> anyhow::Result<(Engine, Settings)> {
+    /// Loads the bundle and builds an engine with these settings and the mask.
+    pub fn engine(&self) -> anyhow::Result<Engine> {
         let settings = self.settings();
         let bundle = Bundle::load(&self.bundle, &settings.batch_sizes())?;
-        settings.validate(Some(bundle.manifest.classes.len())).map_err(|e| anyhow::anyhow!("{e}"))?;
-        let mut engine = Engine::new(Arc::new(bundle));
+        let mut engine = Engine::new(Arc::new(bundle), settings)?;
         if let Some(path) = &self.mask {
-            engine.set_mask(Some(Mask::from_image_file(path).map_err(anyhow::Error::msg)?));
+            engine.set_mask(Some(Mask::from_image_file(path)?));
         }
-        Ok((engine, settings))
+        Ok(engine)
     }
 }
 
 pub fn run(args: AnalyzeArgs) -> anyhow::Result<ExitCode> {
-    let (mut engine, settings) = args.engine.engine()?;
+    let mut engine = args.engine.engine()?;
     let mut out = std::io::stdout().lock();
     let mut failed = 0;
     for (seq, path) in args.images.iter().enumerate() {
         let t = std::time::Instant::now();
-        let line = match decode_file(path, seq as u64, args.engine.limits.max_pixels) {
+        let line = match decode_file(path, seq as u64, args.max_pixels) {
             Err(e) => Err(e.to_string()),
             Ok(frame) => {
                 let decode_ms = t.elapsed().as_secs_f64() * 1000.0;
-                engine.analyze(&frame, &settings, args.engine.seed).map_err(|e| e.to_string()).map(|mut r| {
+                engine.analyze(&frame, args.engine.seed).map_err(|e| e.to_string()).map(|mut r| {
                     r.times_ms.decode = Some(decode_ms);
                     serde_json::to_string(&r).expect("report serialises")
                 })

@@ -9,16 +9,12 @@ use anyhow::Context;
 use clap::Args;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
-use saccade::config::{LogConfig, RecordPolicy, SyncPolicy};
 use saccade::demo::scene;
-use saccade::engine::analysis::f32_slice;
-use saccade::engine::estimator::{EstimatorKind, Plan};
-use saccade::engine::patches::Normalizer;
-use saccade::engine::thumbnail::{area_reduce, area_reduce_loop, area_reduce_simd, thumbnail_size};
-use saccade::engine::uncertainty::{probabilities, sample_psi, summarise};
-use saccade::engine::{Bundle, Engine, Settings};
+use saccade::engine::thumbnail::{area_reduce_loop, area_reduce_simd};
+use saccade::engine::{Bundle, CellOrder, Engine, EstimatorKind, Settings};
 use saccade::sinks::jsonl::JsonlLog;
 use saccade::sinks::record::{rfc3339, FrameRecord, SCHEMA};
+use saccade::sinks::{LogConfig, RecordPolicy, SyncPolicy};
 use saccade::source::{decode_bytes, DEFAULT_MAX_PIXELS};
 use serde::Serialize;
 use tract_onnx::prelude::Tensor;
@@ -28,13 +24,16 @@ use super::demo::parse_size;
 /// Measure per-stage costs (min / median / max over repeats) on this machine.
 #[derive(Args)]
 pub struct BenchArgs {
+    /// Model bundle folder (holding bundle.toml).
     #[arg(long)]
     pub bundle: PathBuf,
     /// Frame to use; without it a demo frame of --size is generated and JPEG-encoded.
     #[arg(long)]
     pub frame: Option<PathBuf>,
+    /// Size of the generated frame as WIDTHxHEIGHT (without --frame).
     #[arg(long, default_value = "2448x2048", value_parser = parse_size)]
     pub size: (u32, u32),
+    /// Repeats of each stage; min, median and max are reported.
     #[arg(long, default_value_t = 15)]
     pub repeats: usize,
     /// Budgets (ms) for which to report the frame rate they allow.
@@ -120,33 +119,29 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     stages.push(measure("thumbnail (area loop)", n, || timed(|| drop(area_reduce_loop(&frame.image, s)))));
     stages.push(measure("thumbnail (fast_image_resize box)", n, || timed(|| drop(area_reduce_simd(&frame.image, s)))));
 
-    let norm = Normalizer::new(&m.normalization);
-    let thumb = area_reduce(&frame.image, s);
-    let (tw, th) = thumbnail_size(fw, fh, s);
-    let shape = [1, 3, th as usize, tw as usize];
-    bundle.attention.plan(&shape)?;
-    stages.push(measure("attention network", n, || {
-        let mut input = Tensor::zero::<f32>(&shape).expect("tensor");
-        norm.write_planar(&thumb, f32_slice(&mut input));
-        timed(|| drop(bundle.attention.run(input).expect("attention runs")))
+    // The engine's own stages, as `analyze` runs them.
+    let mut engine = Engine::new(bundle.clone(), settings.clone())?;
+    engine.prepare(fw, fh)?;
+    let thumb = engine.thumbnail(&frame);
+    stages.push(measure("thumbnail (engine stage: reduce and normalise)", n, || {
+        timed(|| drop(engine.thumbnail(&frame)))
+    }));
+    let attention = engine.attention(&frame, thumb.input.clone())?;
+    stages.push(measure("attention network (engine stage: run, softmax)", n, || {
+        let input = thumb.input.clone();
+        timed(|| drop(engine.attention(&frame, input).expect("attention runs")))
     }));
 
-    let p = m.patch_size as usize;
+    let g = attention.geometry;
     let mut rng = ChaCha8Rng::seed_from_u64(1);
     for &b in &sizes {
-        stages.push(measure(&format!("per patch, batch {b}"), n, || {
-            let t = Instant::now();
-            let mut batch = Tensor::zero::<f32>(&[b, 3, p, p]).expect("tensor");
-            let dst = f32_slice(&mut batch);
-            for j in 0..b {
-                let origin = (rng.random_range(0..fw as i64 - p as i64), rng.random_range(0..fh as i64 - p as i64));
-                norm.write_patch(&frame.image, origin, p, &mut dst[j * 3 * p * p..(j + 1) * 3 * p * p]);
-            }
-            bundle.features.run(batch).expect("features run");
-            t.elapsed() / b as u32
+        stages.push(measure(&format!("per patch, batch {b} (engine stage: extract and run)"), n, || {
+            let cells: Vec<usize> = (0..b).map(|_| rng.random_range(0..g.cells())).collect();
+            timed(|| drop(engine.features(&frame, &g, &cells).expect("features run"))) / b as u32
         }));
     }
 
+    let p = m.patch_size as usize;
     for &b in &sizes {
         let input = Tensor::zero::<f32>(&[b, 3, p, p]).expect("tensor");
         stages.push(measure(&format!("feature network only, per patch, batch {b}"), n, || {
@@ -159,29 +154,18 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     let k = 64;
     let feats: Vec<f32> = (0..k * d).map(|_| rng.random_range(-1.0..1.0)).collect();
     let a: Vec<f64> = vec![1.0 / 4096.0; 4096];
-    let weights = Plan::new(EstimatorKind::Priority, &a, 0, &mut rng).weights(k);
-    bundle.head.plan(&[settings.samples + 1, d])?;
+    let weights = CellOrder::new(EstimatorKind::Priority, &a, 0, &mut rng).weights(k);
     stages.push(measure(&format!("head + uncertainty ({} samples, {k} patches)", settings.samples), n, || {
-        timed(|| {
-            let rows = sample_psi(&weights, &feats, d, settings.samples, &mut rng);
-            let logits = bundle
-                .head
-                .run(Tensor::from_shape(&[settings.samples + 1, d], &rows).expect("tensor"))
-                .expect("head runs");
-            let probs = probabilities(logits.as_slice().expect("dense"), m.classes.len(), m.activation);
-            drop(summarise(&probs, &m.classes, &m.thresholds, settings.interval));
-        })
+        timed(|| drop(engine.head(&weights, &feats, &mut rng).expect("head runs")))
     }));
 
-    let mut engine = Engine::new(bundle.clone());
-    engine.prepare(fw, fh, &settings)?;
     let net_busy = || bundle.attention.busy() + bundle.features.busy() + bundle.head.busy();
     let mut overhead = Vec::new();
     let mut report = None;
     stages.push(measure(&format!("whole analysis, priority, {} ms budget", settings.budget_ms), n, || {
         let busy0 = net_busy();
         let t = Instant::now();
-        report = Some(engine.analyze(&frame, &settings, 7).expect("analysis runs"));
+        report = Some(engine.analyze(&frame, 7).expect("analysis runs"));
         let total = t.elapsed();
         overhead.push((total - (net_busy() - busy0)).as_secs_f64() * 1000.0);
         total
@@ -218,10 +202,10 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
         drop(log);
         std::fs::remove_file(&path).ok();
     }
-    let dense = Settings { estimator: EstimatorKind::Exhaustive, ..settings.clone() };
+    engine.set_settings(Settings { estimator: EstimatorKind::Exhaustive, ..settings.clone() })?;
     let cells = report.cells;
     stages.push(measure(&format!("dense: exhaustive over every cell ({cells} cells)"), n.min(3), || {
-        timed(|| drop(engine.analyze(&frame, &dense, 7).expect("analysis runs")))
+        timed(|| drop(engine.analyze(&frame, 7).expect("analysis runs")))
     }));
 
     let median = |name: &str| stages.iter().find(|s| s.stage.starts_with(name)).map(|s| s.median_ms).unwrap_or(0.0);

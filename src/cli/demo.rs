@@ -17,13 +17,16 @@ pub struct DemoArgs {
     /// Folder for the generated bundle and frames.
     #[arg(long, default_value = "demo-out")]
     pub out: PathBuf,
+    /// Generated frames to write and analyse.
     #[arg(long, default_value_t = 4)]
     pub frames: usize,
+    /// Seed of the generated frames and of the analyses.
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
     /// Frame size as WIDTHxHEIGHT.
     #[arg(long, default_value = "2448x2048", value_parser = parse_size)]
     pub size: (u32, u32),
+    /// Time budget per frame in milliseconds.
     #[arg(long, default_value_t = Settings::default().budget_ms)]
     pub budget_ms: f64,
     /// Use the designed (untrained) bundle instead of the shipped trained one.
@@ -51,7 +54,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
     std::fs::create_dir_all(&frames_dir).with_context(|| format!("creating {}", frames_dir.display()))?;
     let settings = Settings { budget_ms: args.budget_ms, ..Settings::default() };
     let bundle = Bundle::load(&bundle_dir, &settings.batch_sizes())?;
-    let mut engine = Engine::new(Arc::new(bundle));
+    let mut engine = Engine::new(Arc::new(bundle), settings)?;
     let mut out = std::io::stdout().lock();
     for n in 0..args.frames {
         let seed = args.seed.wrapping_mul(1_000_003).wrapping_add(n as u64);
@@ -61,7 +64,7 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
         let t = std::time::Instant::now();
         let frame = decode_file(&path, n as u64, DEFAULT_MAX_PIXELS)?;
         let decode_ms = t.elapsed().as_secs_f64() * 1000.0;
-        let mut report = engine.analyze(&frame, &settings, seed)?;
+        let mut report = engine.analyze(&frame, seed)?;
         report.times_ms.decode = Some(decode_ms);
         writeln!(out, "{}", serde_json::to_string(&report)?)?;
         let placed = generated.classes();

@@ -3,18 +3,17 @@
 
 use std::path::PathBuf;
 use std::process::ExitCode;
+use std::sync::Arc;
 
 use anyhow::{bail, Context};
 use clap::Args;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
-use saccade::engine::patches::{Geometry, Normalizer};
-use saccade::engine::Bundle;
+use saccade::engine::{Bundle, Engine, Geometry, Settings};
 use saccade::eval::marks::cell_of;
 use saccade::eval::probe::{cross_validate, per_class_f1};
 use saccade::labels::read_labels;
 use saccade::source::{decode_file, DEFAULT_MAX_PIXELS};
-use tract_onnx::prelude::Tensor;
 
 /// Test the feature network alone: at labelled mark positions, do its features tell the
 /// classes apart (and from look-alikes and plain ground)? Needs labels with positions.
@@ -49,7 +48,8 @@ enum Kind {
 }
 
 pub fn run(a: ProbeArgs) -> anyhow::Result<ExitCode> {
-    let bundle = Bundle::load(&a.bundle, &[8])?;
+    let bundle = Arc::new(Bundle::load(&a.bundle, &Settings::default().batch_sizes())?);
+    let engine = Engine::new(bundle.clone(), Settings::default())?;
     let m = &bundle.manifest;
     let classes = m.classes.clone();
     let mut labels = read_labels(&a.labels)?;
@@ -62,8 +62,6 @@ pub fn run(a: ProbeArgs) -> anyhow::Result<ExitCode> {
             a.labels.display()
         );
     }
-    let norm = Normalizer::new(&m.normalization);
-    let p = m.patch_size as usize;
     let mut rng = ChaCha8Rng::seed_from_u64(a.seed);
     let (mut feats, mut kinds) = (Vec::new(), Vec::new());
     for (i, l) in labels.iter().enumerate().filter(|(_, l)| !l.marks.is_empty() || !l.lookalikes.is_empty()) {
@@ -105,14 +103,9 @@ pub fn run(a: ProbeArgs) -> anyhow::Result<ExitCode> {
                 cells.push((c, Kind::Ground));
             }
         }
-        let mut batch = Tensor::zero::<f32>(&[cells.len(), 3, p, p]).expect("patch batch");
-        let dst = saccade::engine::analysis::f32_slice(&mut batch);
-        for (j, &(c, _)) in cells.iter().enumerate() {
-            norm.write_patch(&frame.image, g.patch_origin(c), p, &mut dst[j * 3 * p * p..(j + 1) * 3 * p * p]);
-        }
-        let out = bundle.features.run(batch)?;
+        let list: Vec<usize> = cells.iter().map(|c| c.0).collect();
+        let flat = engine.features(&frame, &g, &list)?;
         let d = m.feature_dim;
-        let flat = out.as_slice().expect("dense output");
         for (j, &(_, k)) in cells.iter().enumerate() {
             feats.push(flat[j * d..(j + 1) * d].to_vec());
             kinds.push(k);

@@ -15,8 +15,10 @@ use super::demo::parse_size;
 /// Write generated frames of the demo scenario and `labels.jsonl`, deterministic by seed.
 #[derive(Args)]
 pub struct SceneArgs {
+    /// Folder for the frames and labels.jsonl (created if missing).
     #[arg(long)]
     pub out: PathBuf,
+    /// Frames to write.
     #[arg(long, default_value_t = 100)]
     pub count: u64,
     /// Frame n is drawn from generator seed SEED + n.
@@ -25,6 +27,7 @@ pub struct SceneArgs {
     /// Frame size as WIDTHxHEIGHT.
     #[arg(long, default_value = "2448x2048", value_parser = parse_size)]
     pub size: (u32, u32),
+    /// Image format of the frames.
     #[arg(long, value_enum, default_value_t = Format::Jpg)]
     pub format: Format,
     /// JPEG quality (1–100), as a camera's encoder would apply.

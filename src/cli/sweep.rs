@@ -22,7 +22,7 @@ use saccade::eval::csv;
 use saccade::eval::plot::{self, SweepPlot};
 use saccade::eval::rows::{recommend, within_tolerance, Row, RowKind, Tally};
 use saccade::labels::{class_matrix, read_labels, MarkAt};
-use saccade::source::decode_file;
+use saccade::source::{decode_file, DEFAULT_MAX_PIXELS};
 
 use super::analyze::EngineLimits;
 
@@ -65,6 +65,9 @@ pub struct SweepArgs {
     pub ece_bins: usize,
     #[command(flatten)]
     pub limits: EngineLimits,
+    /// Refuse frames with more pixels than this (checked from the header).
+    #[arg(long, default_value_t = DEFAULT_MAX_PIXELS)]
+    pub max_pixels: u64,
 }
 
 impl SweepArgs {
@@ -107,7 +110,7 @@ impl SweepArgs {
 }
 
 /// A labelled frame ready to analyse.
-struct Item {
+struct LabelledFrame {
     path: PathBuf,
     name: String,
     line: usize,
@@ -132,12 +135,12 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
     let labels = read_labels(&args.labels)?;
     let bundle = Arc::new(Bundle::load(&args.bundle, &base.batch_sizes())?);
     let m = bundle.manifest.clone();
-    base.validate(Some(m.classes.len())).map_err(anyhow::Error::msg)?;
+    let mut engine = Engine::new(bundle.clone(), base.clone())?;
     let truth = class_matrix(&labels, &m.classes, &args.labels)?;
-    let items: Vec<Item> = labels
+    let items: Vec<LabelledFrame> = labels
         .iter()
         .zip(truth)
-        .map(|(l, truth)| Item {
+        .map(|(l, truth)| LabelledFrame {
             path: args.frames.as_ref().map_or_else(|| l.frame.clone(), |d| d.join(&l.name)),
             name: l.name.clone(),
             line: l.line,
@@ -178,7 +181,6 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
     let has_baseline = bundle.baseline.is_some();
     let per_frame = 1 + has_baseline as u64 + budgets.len() as u64 * args.seeds;
     let bar = progress(items.len() as u64 * per_frame);
-    let mut engine = Engine::new(bundle.clone());
     let exhaustive_settings = Settings { estimator: EstimatorKind::Exhaustive, ..base.clone() };
     let mut exhaustive = Tally::default();
     let mut baseline = Tally::default();
@@ -187,16 +189,18 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
     let n = items.len() as u64;
     for (i, it) in items.iter().enumerate() {
         bar.set_message(it.name.clone());
-        let frame = decode_file(&it.path, i as u64, args.limits.max_pixels)
+        let frame = decode_file(&it.path, i as u64, args.max_pixels)
             .with_context(|| format!("{}:{}", args.labels.display(), it.line))?;
         let at = || format!("{}:{}: frame {}", args.labels.display(), it.line, it.path.display());
         if sizes.insert((frame.width(), frame.height())) {
             // The first analysis of a new frame size builds its plans and warms caches; it
             // is not counted.
-            engine.analyze(&frame, &Settings { budget_ms: budgets[0], ..base.clone() }, u64::MAX).with_context(at)?;
+            engine.set_settings(Settings { budget_ms: budgets[0], ..base.clone() })?;
+            engine.analyze(&frame, u64::MAX).with_context(at)?;
             bundle.baseline_probabilities(&frame.image).with_context(at)?;
         }
-        let dense = engine.analyze(&frame, &exhaustive_settings, 0).with_context(at)?;
+        engine.set_settings(exhaustive_settings.clone())?;
+        let dense = engine.analyze(&frame, 0).with_context(at)?;
         let reference: Vec<f64> = dense.classes.iter().map(|c| c.probability).collect();
         exhaustive.add_report(&dense, &it.truth, &reference);
         exhaustive.add_marks(&dense, &it.marks);
@@ -211,10 +215,10 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
             bar.inc(1);
         }
         for (tally, &budget_ms) in tallies.iter_mut().zip(&budgets) {
-            let s = Settings { budget_ms, ..base.clone() };
+            engine.set_settings(Settings { budget_ms, ..base.clone() })?;
             for seed in 0..args.seeds {
                 // Distinct per (seed pass, frame); a report's seed replays it with `analyze`.
-                let r = engine.analyze(&frame, &s, seed * n + i as u64).with_context(at)?;
+                let r = engine.analyze(&frame, seed * n + i as u64).with_context(at)?;
                 tally.add_report(&r, &it.truth, &reference);
                 tally.add_marks(&r, &it.marks);
                 bar.inc(1);

@@ -5,7 +5,7 @@
 
 use std::path::Path;
 
-use crate::engine::bundle::{Activation, Manifest, NetworkRef, Normalization, FORMAT, MANIFEST};
+use crate::bundle::{Activation, Manifest, NetworkRef, Normalization, FORMAT, MANIFEST};
 use crate::onnx::writer::{Dim, GraphWriter};
 
 pub const CLASSES: [&str; 2] = ["dark_spot", "bright_spot"];

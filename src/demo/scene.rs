@@ -239,10 +239,10 @@ fn paint_material(c: &mut Canvas, rng: &mut ChaCha8Rng) {
     let lattice: Vec<f32> = (0..gw * gh).map(|_| grain_noise.sample(rng)).collect();
     let (hw, hh) = (w as f32 / 2.0, h as f32 / 2.0);
     let diag2 = hw * hw + hh * hh;
-    for y in 0..h {
+    for (y, &cos_y) in cy.iter().enumerate() {
         let (yf, ly) = (y as f32, y / G);
         let ty = (y % G) as f32 / G as f32;
-        for x in 0..w {
+        for (x, &sin_x) in sx.iter().enumerate() {
             let (xf, lx) = (x as f32, x / G);
             let tx = (x % G) as f32 / G as f32;
             let l = |i: usize, j: usize| lattice[j * gw + i];
@@ -250,7 +250,7 @@ fn paint_material(c: &mut Canvas, rng: &mut ChaCha8Rng) {
                 + (l(lx, ly + 1) * (1.0 - tx) + l(lx + 1, ly + 1) * tx) * ty;
             let r2 = ((xf - hw).powi(2) + (yf - hh).powi(2)) / diag2;
             let light = level + gx * (xf / w as f32 - 0.5) + gy * (yf / h as f32 - 0.5) - vignette * r2;
-            c.v[y * w + x] = light + depth * sx[x] * cy[y] + grain;
+            c.v[y * w + x] = light + depth * sin_x * cos_y + grain;
         }
     }
 }

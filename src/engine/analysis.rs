@@ -1,225 +1,52 @@
-//! One frame through the engine: thumbnail, attention, the budgeted patch loop, the
-//! estimate and its uncertainty.
+//! The engine: one frame through its stages (thumbnail, attention, the budgeted patch
+//! loop, the head with the uncertainty) into a report.
 
-use std::collections::BTreeMap;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use image::RgbImage;
-use rand::SeedableRng;
+use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
-use serde::{Deserialize, Serialize};
 use tract_onnx::prelude::Tensor;
 
-use super::bundle::{cell_grid, Bundle, BundleError};
-use super::estimator::{EstimatorKind, Plan};
-use super::mask::{self, Mask};
+use super::budget::{self, CostModel, Limits};
+use super::estimator::{CellOrder, EstimatorKind, Weights};
+use super::frame::Frame;
+use super::mask::{self, Mask, MaskError};
+use super::networks::{f32_slice, zeros, Bundle, BundleError};
 use super::patches::{Geometry, Normalizer};
-use super::thumbnail::area_reduce;
+use super::report::{PatchUse, Report, StageTimes, StopReason};
+use super::settings::{Settings, SettingsError};
+use super::thumbnail::{area_reduce, thumbnail_size};
 use super::uncertainty::{probabilities, sample_psi, summarise, ClassResult};
-use crate::source::Frame;
-
-/// Per-frame knobs; the daemon reloads these without reloading the bundle.
-#[derive(Clone, Debug, Serialize, Deserialize)]
-#[serde(deny_unknown_fields, default)]
-pub struct Settings {
-    /// Time allowed from the start of the thumbnail to the end of the head, in ms.
-    pub budget_ms: f64,
-    pub estimator: EstimatorKind,
-    /// Patches computed even when the deadline has passed (at least 1).
-    pub min_patches: usize,
-    /// Upper bound on patches per frame (also the number of draws for `replacement`).
-    pub max_patches: usize,
-    /// Patches per feature-network run.
-    pub batch: usize,
-    /// Gaussian samples of Psi for the uncertainty.
-    pub samples: usize,
-    /// Level of the central interval, e.g. 0.9 for 5 %–95 %.
-    pub interval: f64,
-    /// Per-class thresholds overriding the bundle's defaults.
-    pub thresholds: Option<Vec<f64>>,
-    /// Base RNG seed: the daemon gives frame `n` the seed `seed + n`, recorded in its report.
-    pub seed: u64,
-}
-
-impl Default for Settings {
-    fn default() -> Self {
-        Self {
-            budget_ms: 100.0,
-            estimator: EstimatorKind::Priority,
-            min_patches: 4,
-            max_patches: 256,
-            batch: 8,
-            samples: 64,
-            interval: 0.9,
-            thresholds: None,
-            seed: 0,
-        }
-    }
-}
-
-impl Settings {
-    /// Checks the values (and the threshold count when the class count is known); errors
-    /// name the field and what was expected.
-    pub fn validate(&self, classes: Option<usize>) -> Result<(), String> {
-        if !(self.budget_ms > 0.0 && self.budget_ms.is_finite()) {
-            return Err(format!("budget_ms = {}: expected a positive number of milliseconds", self.budget_ms));
-        }
-        if self.min_patches == 0 {
-            return Err("min_patches = 0: expected at least 1 (an estimate needs one patch)".into());
-        }
-        if self.max_patches < self.min_patches {
-            return Err(format!("max_patches = {} is below min_patches = {}", self.max_patches, self.min_patches));
-        }
-        if self.batch == 0 || self.batch > 256 {
-            return Err(format!("batch = {}: expected 1 to 256", self.batch));
-        }
-        if !(self.interval > 0.0 && self.interval < 1.0) {
-            return Err(format!("interval = {}: expected a level strictly between 0 and 1, e.g. 0.9", self.interval));
-        }
-        if self.samples == 0 {
-            return Err("samples = 0: expected at least 1 Gaussian sample for the interval".into());
-        }
-        if let Some(t) = &self.thresholds {
-            if let Some(classes) = classes.filter(|&c| c != t.len()) {
-                return Err(format!("thresholds: expected one per class ({classes}), found {}", t.len()));
-            }
-            if let Some(v) = t.iter().find(|v| !(0.0..=1.0).contains(*v)) {
-                return Err(format!("thresholds: {v} is outside [0, 1]"));
-            }
-        }
-        Ok(())
-    }
-
-    /// Batch sizes the loop may use: powers of two below `batch`, and `batch`.
-    pub fn batch_sizes(&self) -> Vec<usize> {
-        let mut v: Vec<usize> = (0..).map(|e| 1usize << e).take_while(|&b| b < self.batch).collect();
-        v.push(self.batch);
-        v
-    }
-}
-
-/// Why the patch loop ended.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum StopReason {
-    /// The next batch would have passed the deadline.
-    Budget,
-    /// `max_patches` was reached.
-    MaxPatches,
-    /// Every cell with positive attention was examined.
-    AllCells,
-}
-
-/// One examined patch.
-#[derive(Clone, Debug, Serialize)]
-pub struct PatchUse {
-    /// Top-left corner in frame pixels (may be negative at the border).
-    pub x: i64,
-    pub y: i64,
-    pub size: u32,
-    pub row: usize,
-    pub col: usize,
-    /// The cell's attention after masking.
-    pub attention: f64,
-    /// Its weight in the estimate.
-    pub weight: f64,
-}
-
-#[derive(Clone, Debug, Default, Serialize)]
-pub struct StageTimes {
-    /// Set by callers that decode (the engine starts from a decoded frame).
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub decode: Option<f64>,
-    pub thumbnail: f64,
-    pub attention: f64,
-    /// Patch extraction and feature network runs.
-    pub patches: f64,
-    /// Gaussian samples, head and summary.
-    pub head: f64,
-    /// Thumbnail to head: the part the budget governs.
-    pub total: f64,
-    /// One-off plan building for a new frame size (outside the budget).
-    #[serde(skip_serializing_if = "is_zero")]
-    pub plan: f64,
-}
-
-fn is_zero(v: &f64) -> bool {
-    *v == 0.0
-}
-
-/// Everything the engine says about one frame.
-#[derive(Clone, Debug, Serialize)]
-pub struct Report {
-    pub seq: u64,
-    pub origin: String,
-    pub width: u32,
-    pub height: u32,
-    pub estimator: EstimatorKind,
-    /// RNG seed of this analysis: with the same seed and patch count it replays exactly.
-    pub seed: u64,
-    pub classes: Vec<ClassResult>,
-    pub patch_count: usize,
-    pub cells: usize,
-    /// Attention mass of the examined cells, `Σ_{i≤k} a_i`.
-    pub attention_mass: f64,
-    pub patches: Vec<PatchUse>,
-    pub times_ms: StageTimes,
-    pub budget_ms: f64,
-    pub budget_met: bool,
-    pub stop: StopReason,
-    /// Estimate of Psi (feature space), for replay checks and sweeps.
-    #[serde(skip)]
-    pub psi: Vec<f64>,
-    /// Attention per cell after masking, row-major over `geometry`.
-    #[serde(skip)]
-    pub attention: Vec<f64>,
-    #[serde(skip)]
-    pub geometry: Option<Geometry>,
-    #[serde(skip)]
-    pub thumbnail: Option<RgbImage>,
-}
 
 #[derive(Debug, thiserror::Error)]
 pub enum EngineError {
     #[error(transparent)]
     Bundle(#[from] BundleError),
-    #[error("{0}")]
-    Mask(String),
+    #[error("mask: {0}")]
+    Mask(#[from] MaskError),
     #[error("settings: {0}")]
-    Settings(String),
+    Settings(#[from] SettingsError),
 }
 
-/// Running estimates of what the next batch and the head will cost.
-struct CostModel {
-    per_patch: BTreeMap<usize, f64>,
-    /// Fixed part of the head stage (its network run), from the load-time dry run.
-    head_base: f64,
-    /// Part of the head stage that grows with the patches examined (the Gaussian samples).
-    head_per_patch: f64,
+/// The thumbnail of a frame and the attention network's input made from it.
+pub struct Thumbnail {
+    pub image: RgbImage,
+    pub input: Tensor,
 }
 
-impl CostModel {
-    const KEEP: f64 = 0.7;
-    /// Safety factor on predicted costs: timing noise on a busy CPU is one-sided.
-    const MARGIN: f64 = 1.25;
-    /// Share of the budget held back for what the model does not predict (scheduling,
-    /// cache misses on the last batch).
-    const SLACK: f64 = 0.02;
-
-    fn update(slot: &mut f64, observed: f64) {
-        *slot = Self::KEEP * *slot + (1.0 - Self::KEEP) * observed;
-    }
-
-    /// Predicted head stage time after `k` patches.
-    fn head(&self, k: usize) -> f64 {
-        self.head_base + self.head_per_patch * k as f64
-    }
+/// The attention over the cells of one frame, after the mask, summing to 1.
+pub struct Attention {
+    pub geometry: Geometry,
+    pub cells: Vec<f64>,
 }
 
-/// The engine for one bundle; holds per-shape caches, so one per analysis thread.
+/// The engine for one bundle and one set of checked settings. It holds the cost model
+/// and the mask cache, so one per analysis thread; the bundle is shared.
 pub struct Engine {
     bundle: Arc<Bundle>,
+    settings: Settings,
     norm: Normalizer,
     cost: CostModel,
     mask: Option<Mask>,
@@ -227,15 +54,42 @@ pub struct Engine {
 }
 
 impl Engine {
-    pub fn new(bundle: Arc<Bundle>) -> Self {
+    /// Checks `settings` against the bundle and builds the plans they need.
+    pub fn new(bundle: Arc<Bundle>, settings: Settings) -> Result<Self, EngineError> {
         let norm = Normalizer::new(&bundle.manifest.normalization);
-        let per_patch = bundle.dry_run.per_patch.iter().map(|(b, t)| (*b, t.as_secs_f64())).collect();
-        let cost = CostModel { per_patch, head_base: bundle.dry_run.head.as_secs_f64(), head_per_patch: 0.0 };
-        Self { bundle, norm, cost, mask: None, mask_cache: None }
+        let dry = &bundle.dry_run;
+        let cost = CostModel::new(dry.per_patch.iter().map(|(b, t)| (*b, t.as_secs_f64())), dry.head.as_secs_f64());
+        let mut engine = Self { bundle, settings: Settings::default(), norm, cost, mask: None, mask_cache: None };
+        engine.set_settings(settings)?;
+        Ok(engine)
     }
 
     pub fn bundle(&self) -> &Bundle {
         &self.bundle
+    }
+
+    pub fn settings(&self) -> &Settings {
+        &self.settings
+    }
+
+    /// Replaces the settings after checking them, and builds the plans (and first cost
+    /// estimates) of any new batch size or sample count now, outside any frame's budget.
+    /// On an error the engine keeps its settings.
+    pub fn set_settings(&mut self, settings: Settings) -> Result<(), EngineError> {
+        let m = &self.bundle.manifest;
+        settings.check(Some(m.classes.len()))?;
+        let p = m.patch_size as usize;
+        for b in settings.batch_sizes() {
+            self.bundle.features.plan(&[b, 3, p, p])?;
+            if !self.cost.knows(b) {
+                let t = Instant::now();
+                self.bundle.features.run(zeros(&[b, 3, p, p]))?;
+                self.cost.observe_batch(b, t.elapsed().as_secs_f64() / b as f64);
+            }
+        }
+        self.bundle.head.plan(&[settings.samples + 1, m.feature_dim])?;
+        self.settings = settings;
+        Ok(())
     }
 
     /// Replaces the mask (None: examine the whole frame).
@@ -244,85 +98,56 @@ impl Engine {
         self.mask_cache = None;
     }
 
-    /// Builds the plans one frame size and these settings need, so that the first frame
-    /// is not charged for them.
-    pub fn prepare(&mut self, width: u32, height: u32, settings: &Settings) -> Result<(), EngineError> {
-        let m = &self.bundle.manifest;
-        let (tw, th) = super::thumbnail::thumbnail_size(width, height, m.thumbnail_factor);
-        self.bundle.attention.plan(&[1, 3, th as usize, tw as usize])?;
-        let p = m.patch_size as usize;
-        for b in settings.batch_sizes() {
-            self.bundle.features.plan(&[b, 3, p, p])?;
-        }
-        self.bundle.head.plan(&[settings.samples + 1, m.feature_dim])?;
+    fn attention_shape(&self, width: u32, height: u32) -> [usize; 4] {
+        let (tw, th) = thumbnail_size(width, height, self.bundle.manifest.thumbnail_factor);
+        [1, 3, th as usize, tw as usize]
+    }
+
+    /// Builds the plan a frame size needs, so that the first frame of that size is not
+    /// charged for it ([`Engine::analyze`] does it otherwise, outside the budget).
+    pub fn prepare(&mut self, width: u32, height: u32) -> Result<(), EngineError> {
+        self.bundle.attention.plan(&self.attention_shape(width, height))?;
         Ok(())
     }
 
-    /// Analyses one frame within `settings.budget_ms`, drawing randomness from `seed`.
-    pub fn analyze(&mut self, frame: &Frame, settings: &Settings, seed: u64) -> Result<Report, EngineError> {
-        let bundle = self.bundle.clone();
-        let m = &bundle.manifest;
-        settings.validate(Some(m.classes.len())).map_err(EngineError::Settings)?;
+    /// Analyses one frame within the budget, drawing randomness from `seed`.
+    pub fn analyze(&mut self, frame: &Frame, seed: u64) -> Result<Report, EngineError> {
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
         let mut times = StageTimes::default();
         let (fw, fh) = (frame.width(), frame.height());
-        let (tw, th) = super::thumbnail::thumbnail_size(fw, fh, m.thumbnail_factor);
-        let attention_shape = [1, 3, th as usize, tw as usize];
-        if !bundle.attention.has_plan(&attention_shape) {
+        if !self.bundle.attention.has_plan(&self.attention_shape(fw, fh)) {
             let t = Instant::now();
-            self.prepare(fw, fh, settings)?;
+            self.prepare(fw, fh)?;
             times.plan = ms(t.elapsed());
         }
+        let s = self.settings.clone();
 
         let start = Instant::now();
-        let budget = Duration::from_secs_f64(settings.budget_ms / 1000.0);
-        let thumb = area_reduce(&frame.image, m.thumbnail_factor);
-        let mut input = Tensor::zero::<f32>(&attention_shape).expect("thumbnail tensor");
-        self.norm.write_planar(&thumb, f32_slice(&mut input));
+        let budget = Duration::from_secs_f64(s.budget_ms / 1000.0);
+        let Thumbnail { image: thumb, input } = self.thumbnail(frame);
         times.thumbnail = ms(start.elapsed());
 
         let t = Instant::now();
-        let scores = bundle.attention.run(input)?;
-        let (rows, cols) = cell_grid(scores.shape(), th as usize, tw as usize, m.cell_stride as usize)
-            .map_err(|msg| BundleError::Network { path: bundle.attention.path.clone(), message: msg })?;
-        let geometry = Geometry {
-            frame_w: fw,
-            frame_h: fh,
-            factor: m.thumbnail_factor,
-            stride: m.cell_stride,
-            patch: m.patch_size,
-            rows,
-            cols,
-        };
-        let mut a = softmax(scores.as_slice().expect("dense output"));
-        if let Some(factors) = self.mask_factors(&geometry)? {
-            mask::apply(&mut a, &factors)
-                .ok_or_else(|| EngineError::Mask("the mask leaves no attention on this frame".into()))?;
-        }
+        let Attention { geometry, cells: a } = self.attention(frame, input)?;
         times.attention = ms(t.elapsed());
 
         let t = Instant::now();
-        let plan = Plan::new(settings.estimator, &a, settings.max_patches, &mut rng);
-        let (k, stop, feats) = self.patch_loop(frame, &geometry, &plan, settings, start + budget)?;
+        let order = CellOrder::new(s.estimator, &a, s.max_patches, &mut rng);
+        let (k, stop, feats) = self.patch_loop(frame, &geometry, &order, start)?;
         times.patches = ms(t.elapsed());
 
         let t = Instant::now();
-        let weights = plan.weights(k);
-        let d = m.feature_dim;
-        let rows_psi = sample_psi(&weights, &feats, d, settings.samples, &mut rng);
-        let n = settings.samples + 1;
-        let logits = bundle.head.run(Tensor::from_shape(&[n, d], &rows_psi).expect("head input"))?;
-        let probs = probabilities(logits.as_slice().expect("dense output"), m.classes.len(), m.activation);
-        let thresholds = settings.thresholds.as_ref().unwrap_or(&m.thresholds);
-        let classes = summarise(&probs, &m.classes, thresholds, settings.interval);
+        let weights = order.weights(k);
+        let classes = self.head(&weights, &feats, &mut rng)?;
         let head_time = t.elapsed();
-        let per = (head_time.as_secs_f64() - self.cost.head_base).max(0.0) / k as f64;
-        CostModel::update(&mut self.cost.head_per_patch, per);
+        self.cost.observe_head(k, head_time.as_secs_f64());
         times.head = ms(head_time);
         let elapsed = start.elapsed();
         times.total = ms(elapsed);
 
-        let patches = plan.order[..k]
+        let m = &self.bundle.manifest;
+        let cols = geometry.cols;
+        let patches = order.cells[..k]
             .iter()
             .zip(&weights.w)
             .map(|(&i, &w)| {
@@ -335,95 +160,124 @@ impl Engine {
             origin: frame.origin.clone(),
             width: fw,
             height: fh,
-            estimator: settings.estimator,
+            estimator: s.estimator,
             seed,
             classes,
             patch_count: k,
             cells: geometry.cells(),
-            attention_mass: plan.order[..k].iter().map(|&i| a[i]).sum(),
+            attention_mass: order.cells[..k].iter().map(|&i| a[i]).sum(),
             patches,
             times_ms: times,
-            budget_ms: settings.budget_ms,
+            budget_ms: s.budget_ms,
             budget_met: elapsed <= budget,
             stop,
-            psi: weights.estimate(&feats, d),
+            psi: weights.estimate(&feats, m.feature_dim),
             attention: a,
-            geometry: Some(geometry),
-            thumbnail: Some(thumb),
+            geometry,
+            thumbnail: thumb,
         })
     }
 
-    fn mask_factors(&mut self, g: &Geometry) -> Result<Option<Vec<f64>>, EngineError> {
+    /// Stage 1: the area-average thumbnail and the attention network's input.
+    pub fn thumbnail(&self, frame: &Frame) -> Thumbnail {
+        let image = area_reduce(&frame.image, self.bundle.manifest.thumbnail_factor);
+        let mut input = zeros(&[1, 3, image.height() as usize, image.width() as usize]);
+        self.norm.write_planar(&image, f32_slice(&mut input));
+        Thumbnail { image, input }
+    }
+
+    /// Stage 2: the attention network on the thumbnail, softmax over the cells, the mask.
+    pub fn attention(&mut self, frame: &Frame, input: Tensor) -> Result<Attention, EngineError> {
+        let m = &self.bundle.manifest;
+        let (th, tw) = (input.shape()[2], input.shape()[3]);
+        let (shape, scores) = self.bundle.attention.run_flat(input)?;
+        let (rows, cols) = self.bundle.cell_grid(&shape, th, tw)?;
+        let geometry = Geometry {
+            frame_w: frame.width(),
+            frame_h: frame.height(),
+            factor: m.thumbnail_factor,
+            stride: m.cell_stride,
+            patch: m.patch_size,
+            rows,
+            cols,
+        };
+        let mut cells = softmax(&scores);
+        if let Some(factors) = self.mask_factors(&geometry)? {
+            mask::apply(&mut cells, &factors).ok_or(MaskError::NothingLeft)?;
+        }
+        Ok(Attention { geometry, cells })
+    }
+
+    /// Stage 3, one batch: the full-resolution patches of `cells` through the feature
+    /// network; one row of `feature_dim` values per cell.
+    pub fn features(&self, frame: &Frame, g: &Geometry, cells: &[usize]) -> Result<Vec<f32>, EngineError> {
+        let p = self.bundle.manifest.patch_size as usize;
+        let mut batch = zeros(&[cells.len(), 3, p, p]);
+        let dst = f32_slice(&mut batch);
+        for (&cell, out) in cells.iter().zip(dst.chunks_exact_mut(3 * p * p)) {
+            self.norm.write_patch(&frame.image, g.patch_origin(cell), p, out);
+        }
+        Ok(self.bundle.features.run_flat(batch)?.1)
+    }
+
+    /// Stage 4: Gaussian samples of the estimate through the head, summarised per class.
+    pub fn head<R: Rng>(&self, weights: &Weights, feats: &[f32], rng: &mut R) -> Result<Vec<ClassResult>, EngineError> {
+        let (m, s) = (&self.bundle.manifest, &self.settings);
+        let d = m.feature_dim;
+        let rows = sample_psi(weights, feats, d, s.samples, rng);
+        let input = Tensor::from_shape(&[s.samples + 1, d], &rows).expect("rows sized from samples and feature_dim");
+        let (_, logits) = self.bundle.head.run_flat(input)?;
+        let probs = probabilities(&logits, m.classes.len(), m.activation);
+        let thresholds = s.thresholds.as_ref().unwrap_or(&m.thresholds);
+        Ok(summarise(&probs, &m.classes, thresholds, s.interval))
+    }
+
+    fn mask_factors(&mut self, g: &Geometry) -> Result<Option<Vec<f64>>, MaskError> {
         let Some(mask) = &self.mask else { return Ok(None) };
         if let Some((cached, f)) = &self.mask_cache {
             if cached == g {
                 return Ok(Some(f.clone()));
             }
         }
-        mask.check(g.frame_w, g.frame_h).map_err(EngineError::Mask)?;
+        mask.check(g.frame_w, g.frame_h)?;
         let f = mask.cell_factors(g);
         self.mask_cache = Some((*g, f.clone()));
         Ok(Some(f))
     }
 
-    /// Computes features along the plan's order until a stop condition; returns the
-    /// number of cells done, why it stopped and their feature rows.
+    /// Computes features along the order until the budget loop stops; returns the number
+    /// of cells done, why it stopped and their feature rows. `start` is when the budget
+    /// began.
     fn patch_loop(
         &mut self,
         frame: &Frame,
         g: &Geometry,
-        plan: &Plan,
-        s: &Settings,
-        deadline: Instant,
+        order: &CellOrder,
+        start: Instant,
     ) -> Result<(usize, StopReason, Vec<f32>), EngineError> {
-        let bundle = self.bundle.clone();
-        let (p, d) = (bundle.manifest.patch_size as usize, bundle.manifest.feature_dim);
-        let exhaustive = plan.kind() == EstimatorKind::Exhaustive;
-        let slack = CostModel::SLACK * s.budget_ms / 1000.0;
-        let limit = if exhaustive { plan.len() } else { plan.len().min(s.max_patches) };
-        let sizes = s.batch_sizes();
-        let mut feats = Vec::with_capacity(limit * d);
-        let mut k = 0;
-        let stop = loop {
-            if k == plan.len() {
-                break StopReason::AllCells;
-            }
-            if k >= limit {
-                break StopReason::MaxPatches;
-            }
-            let want = s.batch.min(limit - k);
-            let fits = |b: usize| b <= want;
-            let nb = if exhaustive || k < s.min_patches {
-                // Whole batches up to min_patches, even past the deadline (reported as an overrun).
-                *sizes.iter().rev().find(|&&b| fits(b)).expect("batch size 1 always fits")
-            } else {
-                let left = deadline.saturating_duration_since(Instant::now()).as_secs_f64() - slack;
-                let cost = |b: usize| {
-                    CostModel::MARGIN
-                        * (b as f64 * self.cost.per_patch.get(&b).copied().unwrap_or(f64::MAX) + self.cost.head(k + b))
-                };
-                match sizes.iter().rev().find(|&&b| fits(b) && cost(b) <= left) {
-                    Some(&b) => b,
-                    None => break StopReason::Budget,
-                }
-            };
-            let t = Instant::now();
-            let mut batch = Tensor::zero::<f32>(&[nb, 3, p, p]).expect("patch batch");
-            let dst = f32_slice(&mut batch);
-            for (j, &cell) in plan.order[k..k + nb].iter().enumerate() {
-                self.norm.write_patch(
-                    &frame.image,
-                    g.patch_origin(cell),
-                    p,
-                    &mut dst[j * 3 * p * p..(j + 1) * 3 * p * p],
-                );
-            }
-            let out = bundle.features.run(batch)?;
-            feats.extend_from_slice(out.as_slice().expect("dense output"));
-            let per = t.elapsed().as_secs_f64() / nb as f64;
-            CostModel::update(self.cost.per_patch.entry(nb).or_insert(per), per);
-            k += nb;
+        let s = &self.settings;
+        let exhaustive = order.kind() == EstimatorKind::Exhaustive;
+        let seconds = s.budget_ms / 1000.0;
+        let limits = Limits {
+            cells: order.len(),
+            limit: if exhaustive { order.len() } else { order.len().min(s.max_patches) },
+            forced: if exhaustive { order.len() } else { s.min_patches },
+            sizes: s.batch_sizes(),
+            deadline: seconds,
+            slack: CostModel::SLACK * seconds,
         };
+        let mut feats = Vec::with_capacity(limits.limit * self.bundle.manifest.feature_dim);
+        let mut cost = self.cost.clone();
+        let (k, stop) = budget::run(
+            &limits,
+            &mut cost,
+            || start.elapsed().as_secs_f64(),
+            |first, n| {
+                feats.extend(self.features(frame, g, &order.cells[first..first + n])?);
+                Ok::<_, EngineError>(())
+            },
+        )?;
+        self.cost = cost;
         Ok((k, stop, feats))
     }
 }
@@ -435,12 +289,6 @@ pub fn softmax(scores: &[f32]) -> Vec<f64> {
     let s: f64 = a.iter().sum();
     a.iter_mut().for_each(|x| *x /= s);
     a
-}
-
-/// The contiguous f32 storage of a tensor made by `Tensor::zero::<f32>`.
-pub fn f32_slice(t: &mut Tensor) -> &mut [f32] {
-    let view = t.to_plain_array_view_mut::<f32>().expect("f32 tensor");
-    view.into_slice().expect("contiguous tensor")
 }
 
 fn ms(d: Duration) -> f64 {

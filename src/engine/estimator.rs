@@ -3,7 +3,7 @@
 //!
 //! An estimator first fixes a processing order of cells (from the attention and the
 //! random draws only); the budget loop computes features along that order and may stop
-//! after any `k` cells. [`Plan::weights`] then gives, for the first `k` cells, the weights
+//! after any `k` cells. [`CellOrder::weights`] then gives, for the first `k` cells, the weights
 //! of the estimate and the terms of its covariance estimate:
 //!
 //! `Psi_hat = Σ_j w_j f_j`, `Sigma_hat = Σ_j c_j (f_j - m)(f_j - m)ᵀ`, with `m = 0` or
@@ -24,14 +24,19 @@ pub enum EstimatorKind {
     Exhaustive,
 }
 
+/// A name that is not an estimator.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("unknown estimator {0:?}: expected priority, replacement or exhaustive")]
+pub struct UnknownEstimator(pub String);
+
 impl std::str::FromStr for EstimatorKind {
-    type Err = String;
-    fn from_str(s: &str) -> Result<Self, String> {
+    type Err = UnknownEstimator;
+    fn from_str(s: &str) -> Result<Self, UnknownEstimator> {
         match s {
             "priority" => Ok(Self::Priority),
             "replacement" => Ok(Self::Replacement),
             "exhaustive" => Ok(Self::Exhaustive),
-            _ => Err(format!("unknown estimator {s:?}: expected priority, replacement or exhaustive")),
+            _ => Err(UnknownEstimator(s.to_string())),
         }
     }
 }
@@ -46,7 +51,7 @@ impl std::fmt::Display for EstimatorKind {
     }
 }
 
-/// Weights for the first `k` cells of a plan's order.
+/// Weights for the first `k` cells of a [`CellOrder`].
 #[derive(Clone, Debug, PartialEq)]
 pub struct Weights {
     /// Estimate weight per processed cell.
@@ -61,20 +66,20 @@ pub struct Weights {
 
 /// A processing order of cells and what is needed to weight any prefix of it.
 #[derive(Clone, Debug)]
-pub struct Plan {
+pub struct CellOrder {
     kind: EstimatorKind,
     /// Cell indices in processing order.
-    pub order: Vec<usize>,
-    /// Attention of each cell in `order`.
+    pub cells: Vec<usize>,
+    /// Attention of each cell in `cells`.
     attention: Vec<f64>,
-    /// Priority: priorities along `order`, plus the first unprocessed one is `priorities[k]`.
+    /// Priority: priorities along `cells`; the first unprocessed one is `priorities[k]`.
     priorities: Vec<f64>,
-    /// Replacement: the draw sequence as positions in `order`.
+    /// Replacement: the draw sequence as positions in `cells`.
     draws: Vec<usize>,
 }
 
-impl Plan {
-    /// Builds a plan over attention `a` (non-negative, summing to 1). `draws` is the
+impl CellOrder {
+    /// Builds an order over attention `a` (non-negative, summing to 1). `draws` is the
     /// number of i.i.d. draws for `replacement` and is ignored otherwise.
     pub fn new<R: Rng>(kind: EstimatorKind, a: &[f64], draws: usize, rng: &mut R) -> Self {
         match kind {
@@ -84,9 +89,9 @@ impl Plan {
                 Self::priority_with_uniforms(a, &u)
             }
             EstimatorKind::Exhaustive => {
-                let order: Vec<usize> = (0..a.len()).filter(|&i| a[i] > 0.0).collect();
-                let attention = order.iter().map(|&i| a[i]).collect();
-                Self { kind, order, attention, priorities: vec![], draws: vec![] }
+                let cells: Vec<usize> = (0..a.len()).filter(|&i| a[i] > 0.0).collect();
+                let attention = cells.iter().map(|&i| a[i]).collect();
+                Self { kind, cells, attention, priorities: vec![], draws: vec![] }
             }
             EstimatorKind::Replacement => {
                 let cdf: Vec<f64> = a
@@ -113,7 +118,7 @@ impl Plan {
                     seq.push(pos_of[i]);
                 }
                 let attention = order.iter().map(|&i| a[i]).collect();
-                Self { kind, order, attention, priorities: vec![], draws: seq }
+                Self { kind, cells: order, attention, priorities: vec![], draws: seq }
             }
         }
     }
@@ -126,7 +131,7 @@ impl Plan {
         cells.sort_by(|x, y| y.1.total_cmp(&x.1).then(x.0.cmp(&y.0)));
         Self {
             kind: EstimatorKind::Priority,
-            order: cells.iter().map(|c| c.0).collect(),
+            cells: cells.iter().map(|c| c.0).collect(),
             attention: cells.iter().map(|c| a[c.0]).collect(),
             priorities: cells.iter().map(|c| c.1).collect(),
             draws: vec![],
@@ -137,16 +142,16 @@ impl Plan {
         self.kind
     }
 
-    /// Number of cells this plan would process if never stopped.
+    /// Number of cells this order would process if never stopped.
     pub fn len(&self) -> usize {
-        self.order.len()
+        self.cells.len()
     }
 
     pub fn is_empty(&self) -> bool {
-        self.order.is_empty()
+        self.cells.is_empty()
     }
 
-    /// Weights of the estimate after processing the first `k` cells of `order` (`1 ≤ k ≤ len`).
+    /// Weights of the estimate after processing the first `k` cells (`1 ≤ k ≤ len`).
     pub fn weights(&self, k: usize) -> Weights {
         assert!(k >= 1 && k <= self.len(), "k = {k} outside 1..={}", self.len());
         let a = &self.attention[..k];

@@ -5,7 +5,7 @@
 //! Each cell's attention is multiplied by the mean keep value over the frame pixels the
 //! cell covers, so a cell half inside an ignored zone keeps half its weight.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use image::GrayImage;
 use serde::{Deserialize, Serialize};
@@ -22,6 +22,69 @@ pub struct Rect {
     pub height: u32,
 }
 
+#[derive(Clone, Debug, Default, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+/// The `[mask]` table of the daemon's config.
+pub struct MaskConfig {
+    /// Greyscale image of the frame size: black = ignore, white = keep.
+    pub image: Option<PathBuf>,
+    /// Rectangles to ignore, in frame pixels.
+    #[serde(default)]
+    pub ignore: Vec<Rect>,
+}
+
+impl MaskConfig {
+    /// The mask this describes, if any.
+    pub fn load(&self) -> Result<Option<Mask>, MaskError> {
+        match (&self.image, self.ignore.is_empty()) {
+            (Some(_), false) => Err(MaskError::Both),
+            (Some(p), true) => Mask::from_image_file(p).map(Some),
+            (None, false) => Ok(Some(Mask::Ignore(self.ignore.clone()))),
+            (None, true) => Ok(None),
+        }
+    }
+
+    /// Checks that the mask can be read and, when the frame size is known, that it fits.
+    pub fn check(&self, frame_size: Option<(u32, u32)>) -> Result<(), MaskError> {
+        if let Some(p) = self.image.as_ref().filter(|p| !p.is_file()) {
+            return Err(MaskError::ImageMissing(p.clone()));
+        }
+        match (self.load()?, frame_size) {
+            (Some(mask), Some((w, h))) => mask.check(w, h),
+            _ => Ok(()),
+        }
+    }
+}
+
+/// Why a mask cannot be used.
+#[derive(Debug, thiserror::Error)]
+pub enum MaskError {
+    #[error("image = {0:?}: file not found")]
+    ImageMissing(PathBuf),
+    #[error("{}: cannot read the mask image: {source}", path.display())]
+    Read { path: PathBuf, source: image::ImageError },
+    #[error("give either image or ignore, not both")]
+    Both,
+    #[error("mask image is {width}×{height}, expected the frame size {frame_w}×{frame_h}")]
+    ImageSize { width: u32, height: u32, frame_w: u32, frame_h: u32 },
+    #[error("mask image is black everywhere: it would ignore the whole frame")]
+    AllBlack,
+    #[error("ignore rectangle {n} (x={}, y={}, width={}, height={}) is empty or reaches outside the {frame_w}×{frame_h} frame", rect.x, rect.y, rect.width, rect.height)]
+    Rect { n: usize, rect: Rect, frame_w: u32, frame_h: u32 },
+    #[error("the mask leaves no attention on this frame")]
+    NothingLeft,
+}
+
+impl MaskError {
+    /// The `[mask]` key the error is about.
+    pub fn field(&self) -> &'static str {
+        match self {
+            Self::ImageMissing(_) | Self::Read { .. } | Self::ImageSize { .. } | Self::AllBlack => "image",
+            Self::Both | Self::Rect { .. } | Self::NothingLeft => "ignore",
+        }
+    }
+}
+
 #[derive(Clone, Debug)]
 pub enum Mask {
     Image(GrayImage),
@@ -30,24 +93,21 @@ pub enum Mask {
 
 impl Mask {
     /// Reads a greyscale (or colour, converted) mask image.
-    pub fn from_image_file(path: &Path) -> Result<Self, String> {
-        let img = image::open(path).map_err(|e| format!("{}: cannot read the mask image: {e}", path.display()))?;
+    pub fn from_image_file(path: &Path) -> Result<Self, MaskError> {
+        let img = image::open(path).map_err(|source| MaskError::Read { path: path.to_path_buf(), source })?;
         Ok(Mask::Image(img.into_luma8()))
     }
 
     /// Checks the mask against a frame size and that it leaves something to look at.
-    pub fn check(&self, frame_w: u32, frame_h: u32) -> Result<(), String> {
+    pub fn check(&self, frame_w: u32, frame_h: u32) -> Result<(), MaskError> {
         match self {
             Mask::Image(img) => {
                 if img.dimensions() != (frame_w, frame_h) {
-                    return Err(format!(
-                        "mask image is {}×{}, expected the frame size {frame_w}×{frame_h}",
-                        img.width(),
-                        img.height()
-                    ));
+                    let (width, height) = img.dimensions();
+                    return Err(MaskError::ImageSize { width, height, frame_w, frame_h });
                 }
                 if img.as_raw().iter().all(|&v| v == 0) {
-                    return Err("mask image is black everywhere: it would ignore the whole frame".into());
+                    return Err(MaskError::AllBlack);
                 }
             }
             Mask::Ignore(rects) => {
@@ -57,14 +117,7 @@ impl Mask {
                         || r.x as u64 + r.width as u64 > frame_w as u64
                         || r.y as u64 + r.height as u64 > frame_h as u64
                     {
-                        return Err(format!(
-                            "ignore rectangle {} (x={}, y={}, width={}, height={}) is empty or reaches outside the {frame_w}×{frame_h} frame",
-                            n + 1,
-                            r.x,
-                            r.y,
-                            r.width,
-                            r.height
-                        ));
+                        return Err(MaskError::Rect { n: n + 1, rect: *r, frame_w, frame_h });
                     }
                 }
             }
@@ -114,7 +167,7 @@ pub fn apply(attention: &mut [f64], factors: &[f64]) -> Option<()> {
         *a *= f;
     }
     let total: f64 = attention.iter().sum();
-    if !(total > 0.0) {
+    if total.is_nan() || total <= 0.0 {
         return None;
     }
     attention.iter_mut().for_each(|a| *a /= total);
@@ -156,7 +209,7 @@ mod tests {
         assert!(m.check(17, 8).is_err());
         assert_eq!(m.cell_factors(&geom())[7], 0.0);
         let outside = Mask::Ignore(vec![Rect { x: 10, y: 0, width: 7, height: 2 }]);
-        assert!(outside.check(16, 8).unwrap_err().contains("outside"));
+        assert!(outside.check(16, 8).unwrap_err().to_string().contains("outside"));
         let mut a = vec![0.0, 1.0];
         assert!(apply(&mut a, &[1.0, 0.0]).is_none());
     }

@@ -3,7 +3,7 @@
 
 use image::RgbImage;
 
-use super::bundle::Normalization;
+use crate::bundle::Normalization;
 
 /// Maps attention cells to frame coordinates for one frame size.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]

@@ -13,7 +13,7 @@ pub fn thumbnail_size(width: u32, height: u32, s: u32) -> (u32, u32) {
 }
 
 /// Largest factor the 16-bit column sums can take (255 × 257 < 2¹⁶).
-pub const MAX_FACTOR: u32 = 257;
+pub const MAX_FACTOR: u32 = crate::bundle::MAX_THUMBNAIL_FACTOR;
 
 /// Area-average reduction by `s`: the SIMD box filter when `s` divides both sides (it is
 /// about twice as fast as the loop there, see DEVELOPERS.md), the loop otherwise.

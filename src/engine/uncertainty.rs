@@ -5,8 +5,8 @@ use rand::Rng;
 use rand_distr::StandardNormal;
 use serde::Serialize;
 
-use super::bundle::Activation;
 use super::estimator::Weights;
+use crate::bundle::Activation;
 
 /// What a class's interval says relative to its threshold.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]

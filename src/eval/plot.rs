@@ -205,6 +205,7 @@ fn draw_line(img: &mut RgbImage, a: &Area, x: &XAxis, y: &YAxis, line: &Line) {
 }
 
 /// Frame, grid, ticks and labels of one panel, then its lines and legend.
+#[allow(clippy::too_many_arguments)] // one call per panel, each argument a different part of it
 fn panel(
     img: &mut RgbImage,
     a: Area,

@@ -97,7 +97,7 @@ impl Tally {
 
     /// Where the analysis `r` looked against the frame's labelled `marks`.
     pub fn add_marks(&mut self, r: &Report, marks: &[MarkAt]) {
-        let g = r.geometry.as_ref().expect("engine reports carry their geometry");
+        let g = &r.geometry;
         let names: Vec<String> = r.classes.iter().map(|c| c.name.clone()).collect();
         let examined: Vec<usize> = r.patches.iter().map(|p| p.row * g.cols + p.col).collect();
         self.marks.get_or_insert_with(|| MarkTally::new(names.len())).add(g, &r.attention, &examined, marks, &names);

@@ -110,6 +110,7 @@ impl GraphWriter {
     }
 
     /// 2-D convolution, weights `[out, in, k, k]`, symmetric zero padding.
+    #[allow(clippy::too_many_arguments)] // the operator's own parameters, named as ONNX names them
     pub fn conv(
         &mut self,
         x: &str,

@@ -11,7 +11,8 @@ use crossbeam_channel::RecvTimeoutError;
 
 use super::notify::Notifier;
 use crate::config::Config;
-use crate::engine::{Bundle, Engine, Mask};
+use crate::engine::{Bundle, Engine};
+use crate::folders;
 use crate::sinks::jsonl::JsonlLog;
 use crate::sinks::worker::{self, not_clear, SinkMsg};
 use crate::source::{self, SourceCounters};
@@ -31,19 +32,20 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     }
     signal_hook::flag::register(signal_hook::consts::SIGHUP, reload.clone())?;
 
-    let bundle = Arc::new(Bundle::load(&cfg.bundle, &cfg.engine.batch_sizes())?);
-    cfg.check_bundle(config_path, &bundle).map_err(anyhow::Error::msg)?;
-    let mut engine = Engine::new(bundle.clone());
-    engine.set_mask(cfg.mask().map_err(anyhow::Error::msg)?);
+    let bundle = Arc::new(Bundle::load(&cfg.bundle, &cfg.engine.settings.batch_sizes())?);
+    cfg.check_classes(bundle.manifest.classes.len())?;
+    let mut engine = Engine::new(bundle.clone(), cfg.engine.settings.clone())?;
+    engine.set_mask(cfg.mask()?);
     if let Some((w, h)) = cfg.frame_size() {
-        engine.prepare(w, h, &cfg.engine)?;
+        engine.prepare(w, h)?;
     }
+    create_folders(&cfg)?;
     let log = JsonlLog::open(&cfg.log)
         .map_err(|e| anyhow::anyhow!("{}: cannot open the detection log: {e}", cfg.log.path.display()))?;
     let counters = Arc::new(SourceCounters::default());
     let (sinks, sinks_thread) = worker::spawn(log, cfg.log.clone(), &cfg.evidence, counters.clone())?;
     let source_stop = Arc::new(AtomicBool::new(false));
-    let running = source::start(&cfg, counters.clone(), source_stop.clone())
+    let running = source::start(&cfg.source, cfg.max_pixels, counters.clone(), source_stop.clone())
         .map_err(|e| anyhow::anyhow!("{}: {e}", config_path.display()))?;
     log::info!(
         "bundle {} ({} classes) and source up; log {}",
@@ -62,20 +64,19 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
             break;
         }
         if reload.swap(false, Ordering::Relaxed) {
-            match reload_config(config_path, &cfg, &bundle) {
-                Ok((new, mask)) => {
-                    engine.set_mask(mask);
+            match reload_config(config_path, &cfg, &mut engine) {
+                Ok(new) => {
                     sinks.send(SinkMsg::Reconfigure { log: new.log.clone(), evidence: new.evidence.clone() }).ok();
                     cfg = new;
                     log::info!("{}: configuration reloaded", config_path.display());
                 }
-                Err(e) => log::error!("reload rejected, keeping the running configuration: {e}"),
+                Err(e) => log::error!("reload rejected, keeping the running configuration: {e:#}"),
             }
         }
         let msg = match running.frames.recv_timeout(TICK) {
             Ok(Ok(frame)) => {
                 let seed = cfg.engine.seed.wrapping_add(frame.seq);
-                match engine.analyze(&frame, &cfg.engine, seed) {
+                match engine.analyze(&frame, seed) {
                     Ok(report) => {
                         analysed += 1;
                         window_frames += 1;
@@ -117,16 +118,33 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     Ok(())
 }
 
-/// Loads the new config and checks it against what cannot change without a restart.
-fn reload_config(path: &Path, old: &Config, bundle: &Bundle) -> Result<(Config, Option<Mask>), String> {
-    let new = Config::load(path).map_err(|e| e.to_string())?;
-    new.check_bundle(path, bundle)?;
-    if new.bundle != old.bundle
-        || toml::to_string(&new.source).ok() != toml::to_string(&old.source).ok()
-        || new.max_pixels != old.max_pixels
-    {
-        return Err(format!("{}: bundle, max_pixels and [source] change only with a restart", path.display()));
+/// The folders the config writes into, created if missing: the one step of `run` that
+/// makes folders (checking a config never does).
+fn create_folders(cfg: &Config) -> anyhow::Result<()> {
+    for dir in cfg.folders() {
+        if !dir.is_dir() {
+            folders::create(dir)
+                .map_err(|e| anyhow::anyhow!("{}: cannot create {}: {e}", cfg.path().display(), dir.display()))?;
+            log::info!("created {}", dir.display());
+        }
     }
-    let mask = new.mask().map_err(|e| format!("{}: [mask] {e}", path.display()))?;
-    Ok((new, mask))
+    Ok(())
+}
+
+/// Loads the new config, checks it against what cannot change without a restart, creates
+/// its folders, and applies its settings and mask to the engine (plans for new settings
+/// are built here, between frames).
+fn reload_config(path: &Path, old: &Config, engine: &mut Engine) -> anyhow::Result<Config> {
+    let new = Config::load(path)?;
+    new.check_classes(engine.bundle().manifest.classes.len())?;
+    if new.bundle != old.bundle || new.source != old.source || new.max_pixels != old.max_pixels {
+        anyhow::bail!("{}: bundle, max_pixels and [source] change only with a restart", path.display());
+    }
+    let mask = new.mask()?;
+    create_folders(&new)?;
+    engine
+        .set_settings(new.engine.settings.clone())
+        .map_err(|e| anyhow::anyhow!("{}: [engine] {e}", path.display()))?;
+    engine.set_mask(mask);
+    Ok(new)
 }

@@ -10,7 +10,7 @@ use std::time::{Duration, SystemTime};
 
 use image::{Rgb, RgbImage};
 
-use crate::config::EvidenceConfig;
+use super::config::EvidenceConfig;
 use crate::engine::Report;
 
 pub struct Evidence {
@@ -117,10 +117,8 @@ impl Evidence {
 /// The thumbnail tinted red by attention (square root, so the tail stays visible), with
 /// the examined patches outlined in yellow.
 fn overview(report: &Report) -> RgbImage {
-    let (Some(thumb), Some(g)) = (&report.thumbnail, &report.geometry) else {
-        return RgbImage::new(1, 1);
-    };
-    let mut img = thumb.clone();
+    let g = &report.geometry;
+    let mut img = report.thumbnail.clone();
     let max = report.attention.iter().cloned().fold(0.0, f64::max).max(f64::MIN_POSITIVE);
     let stride = g.stride;
     for (x, y, px) in img.enumerate_pixels_mut() {

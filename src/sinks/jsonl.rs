@@ -10,7 +10,7 @@ use std::io::{Read, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
-use crate::config::{LogConfig, SyncPolicy};
+use super::config::{LogConfig, SyncPolicy};
 
 pub struct JsonlLog {
     path: PathBuf,
@@ -136,7 +136,7 @@ mod tests {
     fn cfg(dir: &Path, rotate_mb: f64, keep: usize) -> LogConfig {
         LogConfig {
             path: dir.join("log.jsonl"),
-            records: crate::config::RecordPolicy::All,
+            records: super::super::config::RecordPolicy::All,
             rotate_mb,
             keep,
             sync: SyncPolicy::Always,

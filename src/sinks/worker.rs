@@ -10,10 +10,10 @@ use std::time::{Duration, Instant, SystemTime};
 use crossbeam_channel::{bounded, Receiver, RecvTimeoutError, Sender};
 use image::RgbImage;
 
+use super::config::{EvidenceConfig, LogConfig, RecordPolicy};
 use super::evidence::Evidence;
 use super::jsonl::JsonlLog;
 use super::record::{rfc3339, ErrorRecord, FrameRecord, HealthRecord, Percentiles, SCHEMA};
-use crate::config::{EvidenceConfig, LogConfig, RecordPolicy};
 use crate::engine::{Outcome, Report};
 use crate::source::SourceCounters;
 

@@ -8,10 +8,11 @@ use image::RgbImage;
 use nokhwa::utils::{CameraFormat, CameraIndex, FrameFormat, RequestedFormat, RequestedFormatType};
 use nokhwa::Camera;
 
-use super::decode::decode_bytes;
+use super::config::{device_index, SourceConfigError};
+use super::decode::{decode_bytes, DecodeError};
 use super::feed::{Feed, FrameError};
-use super::yuv::{nv12_to_rgb, yuyv_to_rgb};
-use super::Frame;
+use super::yuv::{nv12_to_rgb, yuyv_to_rgb, ConvertError};
+use crate::engine::Frame;
 
 pub struct CameraSource {
     pub device: String,
@@ -22,9 +23,22 @@ pub struct CameraSource {
     pub max_pixels: u64,
 }
 
-/// `/dev/videoN` (or `N`) to the V4L2 index N.
-pub fn device_index(device: &str) -> Result<u32, String> {
-    device.trim_start_matches("/dev/video").parse().map_err(|_| format!("device {device:?}: expected /dev/videoN"))
+/// Why a camera frame could not be had.
+#[derive(Debug, thiserror::Error)]
+pub enum CameraError {
+    #[error(transparent)]
+    Device(#[from] SourceConfigError),
+    /// nokhwa's explanation follows.
+    #[error("{0}")]
+    Open(String),
+    #[error(transparent)]
+    Decode(#[from] DecodeError),
+    #[error(transparent)]
+    Convert(#[from] ConvertError),
+    #[error("short RGB frame: {got} bytes for {width}×{height}")]
+    ShortRgb { width: u32, height: u32, got: usize },
+    #[error("camera delivered {0}, which saccade does not convert")]
+    Unsupported(String),
 }
 
 fn frame_format(name: &str) -> FrameFormat {
@@ -43,27 +57,29 @@ pub fn to_rgb(
     height: u32,
     max_pixels: u64,
     origin: &str,
-) -> Result<RgbImage, String> {
-    match format {
-        FrameFormat::MJPEG => {
-            decode_bytes(data, origin.to_string(), 0, max_pixels).map(|f| f.image).map_err(|e| e.to_string())
-        }
-        FrameFormat::YUYV => yuyv_to_rgb(data, width, height),
-        FrameFormat::NV12 => nv12_to_rgb(data, width, height),
-        FrameFormat::RAWRGB => RgbImage::from_raw(width, height, data.to_vec()).ok_or_else(|| "short RGB frame".into()),
-        other => Err(format!("camera delivered {other:?}, which saccade does not convert")),
-    }
+) -> Result<RgbImage, CameraError> {
+    Ok(match format {
+        FrameFormat::MJPEG => decode_bytes(data, origin.to_string(), 0, max_pixels)?.image,
+        FrameFormat::YUYV => yuyv_to_rgb(data, width, height)?,
+        FrameFormat::NV12 => nv12_to_rgb(data, width, height)?,
+        FrameFormat::RAWRGB => RgbImage::from_raw(width, height, data.to_vec()).ok_or(CameraError::ShortRgb {
+            width,
+            height,
+            got: data.len(),
+        })?,
+        other => return Err(CameraError::Unsupported(format!("{other:?}"))),
+    })
 }
 
 const BACKOFF_MAX: Duration = Duration::from_secs(30);
 
 impl CameraSource {
-    fn open(&self, formats: &[FrameFormat]) -> Result<Camera, String> {
+    fn open(&self, formats: &[FrameFormat]) -> Result<Camera, CameraError> {
         let index = device_index(&self.device)?;
         let wanted = CameraFormat::new_from(self.width, self.height, formats[0], self.fps);
         let request = RequestedFormat::with_formats(RequestedFormatType::Closest(wanted), formats);
-        let mut cam = Camera::new(CameraIndex::Index(index), request).map_err(|e| e.to_string())?;
-        cam.open_stream().map_err(|e| e.to_string())?;
+        let mut cam = Camera::new(CameraIndex::Index(index), request).map_err(|e| CameraError::Open(e.to_string()))?;
+        cam.open_stream().map_err(|e| CameraError::Open(e.to_string()))?;
         let f = cam.camera_format();
         log::info!(
             "{}: streaming {}×{} {:?} at {} frames/s",
@@ -117,7 +133,7 @@ impl CameraSource {
                             f.captured = captured;
                             f
                         })
-                        .map_err(|message| FrameError { origin: self.device.clone(), message })
+                        .map_err(|e| FrameError { origin: self.device.clone(), message: e.to_string() })
                     }
                     Err(e) => {
                         failures += 1;
@@ -153,7 +169,10 @@ mod tests {
         let yuyv = [81u8, 90, 81, 240]; // BT.601 red, two pixels
         let img = to_rgb(FrameFormat::YUYV, &yuyv, 2, 1, 100, "cam").unwrap();
         assert!(img.get_pixel(0, 0)[0] > 250 && img.get_pixel(1, 0)[1] < 5);
-        assert!(to_rgb(FrameFormat::MJPEG, b"not a jpeg", 2, 1, 100, "cam").unwrap_err().contains("not a JPEG"));
+        assert!(to_rgb(FrameFormat::MJPEG, b"not a jpeg", 2, 1, 100, "cam")
+            .unwrap_err()
+            .to_string()
+            .contains("not a JPEG"));
         assert!(to_rgb(FrameFormat::GRAY, &[0, 0], 2, 1, 100, "cam").is_err());
     }
 }

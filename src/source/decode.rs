@@ -6,7 +6,7 @@ use std::path::Path;
 
 use image::{ImageFormat, ImageReader, Limits};
 
-use super::frame::Frame;
+use crate::engine::Frame;
 
 /// Default ceiling on decoded pixels: 40 MP leaves room above 12 MP sensors.
 pub const DEFAULT_MAX_PIXELS: u64 = 40_000_000;

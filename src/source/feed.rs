@@ -7,11 +7,11 @@ use std::time::Duration;
 
 use crossbeam_channel::{bounded, Receiver, SendTimeoutError, Sender, TrySendError};
 
-use super::Frame;
-use crate::config::Overload;
+use super::config::Overload;
+use crate::engine::Frame;
 
 /// A frame, or why a frame could not be had (logged, then the daemon goes on).
-pub type Item = Result<Frame, FrameError>;
+pub type Incoming = Result<Frame, FrameError>;
 
 #[derive(Clone, Debug)]
 pub struct FrameError {
@@ -30,16 +30,16 @@ pub struct SourceCounters {
 
 /// The sending half, owned by the source thread.
 pub struct Feed {
-    tx: Sender<Item>,
+    tx: Sender<Incoming>,
     /// Kept to evict the waiting frame when a newer one arrives.
-    evict: Receiver<Item>,
+    evict: Receiver<Incoming>,
     overload: Overload,
     pub counters: Arc<SourceCounters>,
     pub stop: Arc<AtomicBool>,
 }
 
 /// Makes a feed holding at most one waiting frame, and its receiving end.
-pub fn feed(overload: Overload, counters: Arc<SourceCounters>, stop: Arc<AtomicBool>) -> (Feed, Receiver<Item>) {
+pub fn feed(overload: Overload, counters: Arc<SourceCounters>, stop: Arc<AtomicBool>) -> (Feed, Receiver<Incoming>) {
     let (tx, rx) = bounded(1);
     (Feed { tx, evict: rx.clone(), overload, counters, stop }, rx)
 }
@@ -50,7 +50,7 @@ impl Feed {
     }
 
     /// Hands an item over; false when the daemon is stopping or analysis has gone.
-    pub fn send(&self, mut item: Item) -> bool {
+    pub fn send(&self, mut item: Incoming) -> bool {
         self.counters.frames_in.fetch_add(1, Ordering::Relaxed);
         loop {
             if self.stopped() {

@@ -6,6 +6,7 @@ use std::time::{Duration, Instant};
 
 use super::decode::decode_file;
 use super::feed::{Feed, FrameError};
+use super::SourceError;
 
 pub struct FilesSource {
     pub files: Vec<PathBuf>,
@@ -15,16 +16,16 @@ pub struct FilesSource {
 }
 
 /// Expands the patterns (each sorted by name), refusing patterns that match nothing.
-pub fn expand(patterns: &[String]) -> Result<Vec<PathBuf>, String> {
+pub fn expand(patterns: &[String]) -> Result<Vec<PathBuf>, SourceError> {
     let mut files = Vec::new();
     for p in patterns {
         let mut matched: Vec<PathBuf> = glob::glob(p)
-            .map_err(|e| format!("paths: {p:?} is not a valid pattern: {e}"))?
+            .map_err(|e| SourceError::Pattern { pattern: p.clone(), message: e.to_string() })?
             .filter_map(Result::ok)
             .filter(|f| f.is_file())
             .collect();
         if matched.is_empty() {
-            return Err(format!("paths: {p:?} matches no file"));
+            return Err(SourceError::NoMatch(p.clone()));
         }
         matched.sort();
         files.extend(matched);

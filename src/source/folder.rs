@@ -6,9 +6,9 @@ use std::collections::{HashMap, HashSet};
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant, SystemTime};
 
+use super::config::AfterUse;
 use super::decode::decode_bytes;
 use super::feed::{Feed, FrameError};
-use crate::config::AfterUse;
 
 pub struct FolderSource {
     pub dir: PathBuf,

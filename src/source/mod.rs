@@ -3,12 +3,12 @@
 
 #[cfg(feature = "camera")]
 pub mod camera;
+mod config;
 pub mod decode;
 pub mod feed;
 pub mod files;
 pub mod folder;
-pub mod frame;
-pub mod scene;
+pub mod generated;
 pub mod yuv;
 
 use std::sync::atomic::AtomicBool;
@@ -18,40 +18,44 @@ use std::time::Duration;
 
 use crossbeam_channel::Receiver;
 
+pub use config::{AfterUse, Overload, SourceConfig, SourceConfigError};
 pub use decode::{decode_bytes, decode_file, DecodeError, DEFAULT_MAX_PIXELS};
-pub use feed::{FrameError, Item, SourceCounters};
-pub use frame::Frame;
+pub use feed::{FrameError, Incoming, SourceCounters};
 
-use crate::config::{Config, Overload, SourceConfig};
+/// Why a source could not be started.
+#[derive(Debug, thiserror::Error)]
+pub enum SourceError {
+    #[error("[source] {0}")]
+    Config(#[from] SourceConfigError),
+    #[error("[source] paths: {pattern:?} is not a valid pattern: {message}")]
+    Pattern { pattern: String, message: String },
+    #[error("[source] paths: {0:?} matches no file")]
+    NoMatch(String),
+    #[error("[source] camera {0}: this build has no camera support (cargo feature \"camera\")")]
+    NoCamera(String),
+    #[error("cannot start the source thread: {0}")]
+    Thread(#[from] std::io::Error),
+}
 
 /// A running source thread and the receiving end of its feed.
 pub struct Running {
-    pub frames: Receiver<Item>,
+    pub frames: Receiver<Incoming>,
     pub thread: JoinHandle<()>,
 }
 
 /// Opens the configured source and starts its thread. Errors (a missing folder, a
 /// pattern matching nothing) are reported here, before the daemon says it is ready.
-pub fn start(cfg: &Config, counters: Arc<SourceCounters>, stop: Arc<AtomicBool>) -> Result<Running, String> {
-    let max_pixels = cfg.max_pixels;
-    let overload = match &cfg.source {
-        SourceConfig::Folder { overload, .. }
-        | SourceConfig::Files { overload, .. }
-        | SourceConfig::Scene { overload, .. } => *overload,
-        SourceConfig::Camera { .. } => Overload::DropOldest,
-    };
-    let (feed, frames) = feed::feed(overload, counters, stop);
-    let spawn = |name: &str, f: Box<dyn FnOnce() + Send>| {
-        std::thread::Builder::new()
-            .name(name.into())
-            .spawn(f)
-            .map_err(|e| format!("cannot start the source thread: {e}"))
-    };
-    let thread = match cfg.source.clone() {
+pub fn start(
+    cfg: &SourceConfig,
+    max_pixels: u64,
+    counters: Arc<SourceCounters>,
+    stop: Arc<AtomicBool>,
+) -> Result<Running, SourceError> {
+    cfg.check()?;
+    let (feed, frames) = feed::feed(cfg.overload(), counters, stop);
+    let spawn = |name: &str, f: Box<dyn FnOnce() + Send>| std::thread::Builder::new().name(name.into()).spawn(f);
+    let thread = match cfg.clone() {
         SourceConfig::Folder { path, after, move_to, stable_ms, poll_ms, .. } => {
-            if !path.is_dir() {
-                return Err(format!("[source] path {}: not a folder", path.display()));
-            }
             let s = folder::FolderSource {
                 dir: path,
                 after,
@@ -63,26 +67,21 @@ pub fn start(cfg: &Config, counters: Arc<SourceCounters>, stop: Arc<AtomicBool>)
             spawn("source-folder", Box::new(move || s.run(feed)))?
         }
         SourceConfig::Files { paths, rate_fps, repeat, .. } => {
-            let files = files::expand(&paths).map_err(|e| format!("[source] {e}"))?;
+            let files = files::expand(&paths)?;
             let s = files::FilesSource { files, rate_fps, repeat, max_pixels };
             spawn("source-files", Box::new(move || s.run(feed)))?
         }
         SourceConfig::Scene { width, height, fps, seed, count, .. } => {
-            let s = scene::SceneSource { width, height, fps, seed, count };
+            let s = generated::GeneratedSource { width, height, fps, seed, count };
             spawn("source-scene", Box::new(move || s.run(feed)))?
         }
         #[cfg(feature = "camera")]
         SourceConfig::Camera { device, width, height, fps, formats } => {
-            camera::device_index(&device).map_err(|e| format!("[source] {e}"))?;
             let s = camera::CameraSource { device, width, height, fps, formats, max_pixels };
             spawn("source-camera", Box::new(move || s.run(feed)))?
         }
         #[cfg(not(feature = "camera"))]
-        SourceConfig::Camera { device, .. } => {
-            return Err(format!(
-                "[source] camera {device}: this build has no camera support (cargo feature \"camera\")"
-            ))
-        }
+        SourceConfig::Camera { device, .. } => return Err(SourceError::NoCamera(device)),
     };
     Ok(Running { frames, thread })
 }

@@ -10,6 +10,15 @@
 
 use image::RgbImage;
 
+/// A camera buffer too short for the frame size it came with.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum ConvertError {
+    #[error("YUYV frame of {width}×{height} needs an even width and {need} bytes, got {got}")]
+    Yuyv { width: u32, height: u32, need: usize, got: usize },
+    #[error("NV12 frame of {width}×{height} needs {need} bytes, got {got}")]
+    Nv12 { width: u32, height: u32, need: usize, got: usize },
+}
+
 const FIX: i32 = 1 << 16;
 const fn fix(x: f64) -> i32 {
     (x * FIX as f64 + 0.5) as i32
@@ -29,14 +38,10 @@ fn pixel(y: u8, u: u8, v: u8) -> [u8; 3] {
 }
 
 /// YUYV 4:2:2 (bytes Y0 U Y1 V per two pixels) to RGB.
-pub fn yuyv_to_rgb(data: &[u8], width: u32, height: u32) -> Result<RgbImage, String> {
+pub fn yuyv_to_rgb(data: &[u8], width: u32, height: u32) -> Result<RgbImage, ConvertError> {
     let (w, h) = (width as usize, height as usize);
     if w % 2 != 0 || data.len() < w * h * 2 {
-        return Err(format!(
-            "YUYV frame of {width}×{height} needs an even width and {} bytes, got {}",
-            w * h * 2,
-            data.len()
-        ));
+        return Err(ConvertError::Yuyv { width, height, need: w * h * 2, got: data.len() });
     }
     let mut out = Vec::with_capacity(w * h * 3);
     for q in data[..w * h * 2].chunks_exact(4) {
@@ -47,11 +52,11 @@ pub fn yuyv_to_rgb(data: &[u8], width: u32, height: u32) -> Result<RgbImage, Str
 }
 
 /// NV12 (a Y plane, then interleaved U V at half resolution both ways) to RGB.
-pub fn nv12_to_rgb(data: &[u8], width: u32, height: u32) -> Result<RgbImage, String> {
+pub fn nv12_to_rgb(data: &[u8], width: u32, height: u32) -> Result<RgbImage, ConvertError> {
     let (w, h) = (width as usize, height as usize);
     let need = w * h + w.div_ceil(2) * 2 * h.div_ceil(2);
     if data.len() < need {
-        return Err(format!("NV12 frame of {width}×{height} needs {need} bytes, got {}", data.len()));
+        return Err(ConvertError::Nv12 { width, height, need, got: data.len() });
     }
     let (ys, uv) = data.split_at(w * h);
     let stride = w.div_ceil(2) * 2;

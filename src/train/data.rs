@@ -10,7 +10,7 @@ use rand::Rng;
 use rand_chacha::ChaCha8Rng;
 
 use super::nn::Act;
-use crate::engine::bundle::Normalization;
+use crate::bundle::Normalization;
 use crate::engine::patches::Geometry;
 use crate::engine::thumbnail::area_reduce;
 use crate::labels::{class_matrix, Labelled};

@@ -226,16 +226,15 @@ impl Sampled {
     /// and per class the frame's logit is the largest of them (multiple-instance learning
     /// with max pooling: a frame carries a class when at least one patch shows it). It
     /// teaches the feature network to see each class in a single patch before attention
-    /// weights come into play. Returns the frame's logits and loss; when `learn`, the
-    /// gradients go to features and head.
+    /// weights come into play. Returns the frame's logits and loss; with `learn` (the loss
+    /// scale of the step) the gradients go to features and head.
     fn instance_step(
         &self,
         data: &Dataset,
         i: usize,
         view: &View,
         top: usize,
-        scale: f32,
-        learn: bool,
+        learn: Option<f32>,
         w: &mut Worker,
     ) -> (Vec<f32>, f64) {
         let thumb = data.thumbnail(i, view, &mut w.scratch, w.at.recycle_input());
@@ -255,8 +254,8 @@ impl Sampled {
             .collect();
         let frame: Vec<f32> = best.iter().enumerate().map(|(c, &j)| z[j * classes + c]).collect();
         let mut dframe = vec![0f32; classes];
-        let loss = bce(&frame, &data.samples[i].target, scale, &mut dframe);
-        if !learn {
+        let loss = bce(&frame, &data.samples[i].target, learn.unwrap_or(1.0), &mut dframe);
+        if learn.is_none() {
             return (frame, loss);
         }
         let mut dz = vec![0f32; z.len()];
@@ -359,7 +358,7 @@ fn validate_stage(
     let plain = View::plain(&data.norm);
     let out = parallel(frames, &mut workers, |w, &i| {
         let (logits, loss) = if stage == Stage::Warmup {
-            m.instance_step(data, i, &plain, k, 1.0, false, w)
+            m.instance_step(data, i, &plain, k, None, w)
         } else {
             let mut rng = ChaCha8Rng::seed_from_u64(seed ^ (i as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15));
             let pass = m.frame_forward(data, i, &plain, |a| priority(a, k, &mut rng), w);
@@ -507,7 +506,7 @@ pub fn fit_sampled(
             workers.iter_mut().for_each(Worker::zero);
             let done = parallel(&jobs, &mut workers, |w, (i, view, s)| {
                 if stage == Stage::Warmup {
-                    return model.instance_step(data, *i, view, o.top, scale, true, w).1;
+                    return model.instance_step(data, *i, view, o.top, Some(scale), w).1;
                 }
                 let mut r = ChaCha8Rng::seed_from_u64(*s);
                 let pass = model.frame_forward(data, *i, view, |a| select(a, o.top, o.tail, &mut r), w);

@@ -15,7 +15,7 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
-use crate::engine::bundle::{Activation, Manifest, NetworkRef, Normalization, FORMAT, MANIFEST};
+use crate::bundle::{Activation, Manifest, NetworkRef, Normalization, FORMAT, MANIFEST};
 use crate::eval::metrics::{best_f1_threshold, f1, predict};
 use data::{Dataset, Shape};
 use fit::{fit_baseline, fit_sampled, validate, validate_baseline, EpochLog, FitOptions, Sampled, Stage};

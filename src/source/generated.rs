@@ -1,12 +1,12 @@
-//! The built-in generated scene: the demo's sheet frames at a steady rate.
+//! The source of generated frames: the demo scene's sheet frames at a steady rate.
 
 use std::time::{Duration, Instant};
 
 use super::feed::Feed;
-use super::Frame;
 use crate::demo::scene;
+use crate::engine::Frame;
 
-pub struct SceneSource {
+pub struct GeneratedSource {
     pub width: u32,
     pub height: u32,
     pub fps: f64,
@@ -15,7 +15,7 @@ pub struct SceneSource {
     pub count: u64,
 }
 
-impl SceneSource {
+impl GeneratedSource {
     pub fn run(self, feed: Feed) {
         let period = Duration::from_secs_f64(1.0 / self.fps);
         let mut next = Instant::now();

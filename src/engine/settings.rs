@@ -1,0 +1,154 @@
+//! The per-frame knobs of the engine and their ranges.
+
+use serde::{Deserialize, Serialize};
+
+use super::estimator::EstimatorKind;
+
+/// Per-frame knobs; the daemon reloads these without reloading the bundle.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Settings {
+    /// Time allowed from the start of the thumbnail to the end of the head, in ms.
+    pub budget_ms: f64,
+    pub estimator: EstimatorKind,
+    /// Patches computed even when the deadline has passed (at least 1).
+    pub min_patches: usize,
+    /// Upper bound on patches per frame (also the number of draws for `replacement`).
+    pub max_patches: usize,
+    /// Patches per feature-network run.
+    pub batch: usize,
+    /// Gaussian samples of Psi for the uncertainty.
+    pub samples: usize,
+    /// Level of the central interval, e.g. 0.9 for 5 %–95 %.
+    pub interval: f64,
+    /// Per-class thresholds overriding the bundle's defaults.
+    pub thresholds: Option<Vec<f64>>,
+}
+
+impl Default for Settings {
+    fn default() -> Self {
+        Self {
+            budget_ms: 100.0,
+            estimator: EstimatorKind::Priority,
+            min_patches: 4,
+            max_patches: 256,
+            batch: 8,
+            samples: 64,
+            interval: 0.9,
+            thresholds: None,
+        }
+    }
+}
+
+/// A setting out of its range; [`SettingsError::field`] names the key.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum SettingsError {
+    #[error("budget_ms = {0}: expected a positive number of milliseconds")]
+    Budget(f64),
+    #[error("min_patches = 0: expected at least 1 (an estimate needs one patch)")]
+    MinPatches,
+    #[error("max_patches = {max} is below min_patches = {min}")]
+    MaxPatches { max: usize, min: usize },
+    #[error("batch = {0}: expected 1 to 256")]
+    Batch(usize),
+    #[error("interval = {0}: expected a level strictly between 0 and 1, e.g. 0.9")]
+    Interval(f64),
+    #[error("samples = 0: expected at least 1 Gaussian sample for the interval")]
+    Samples,
+    #[error("thresholds: expected one per class ({classes}), found {found}")]
+    ThresholdCount { classes: usize, found: usize },
+    #[error("thresholds: {0} is outside [0, 1]")]
+    ThresholdRange(f64),
+}
+
+impl SettingsError {
+    /// The settings key the error is about.
+    pub fn field(&self) -> &'static str {
+        match self {
+            Self::Budget(_) => "budget_ms",
+            Self::MinPatches => "min_patches",
+            Self::MaxPatches { .. } => "max_patches",
+            Self::Batch(_) => "batch",
+            Self::Interval(_) => "interval",
+            Self::Samples => "samples",
+            Self::ThresholdCount { .. } | Self::ThresholdRange(_) => "thresholds",
+        }
+    }
+}
+
+impl Settings {
+    /// Checks the values, and the threshold count when the class count is known.
+    pub fn check(&self, classes: Option<usize>) -> Result<(), SettingsError> {
+        if !(self.budget_ms > 0.0 && self.budget_ms.is_finite()) {
+            return Err(SettingsError::Budget(self.budget_ms));
+        }
+        if self.min_patches == 0 {
+            return Err(SettingsError::MinPatches);
+        }
+        if self.max_patches < self.min_patches {
+            return Err(SettingsError::MaxPatches { max: self.max_patches, min: self.min_patches });
+        }
+        if self.batch == 0 || self.batch > 256 {
+            return Err(SettingsError::Batch(self.batch));
+        }
+        if !(self.interval > 0.0 && self.interval < 1.0) {
+            return Err(SettingsError::Interval(self.interval));
+        }
+        if self.samples == 0 {
+            return Err(SettingsError::Samples);
+        }
+        if let Some(t) = &self.thresholds {
+            if let Some(classes) = classes.filter(|&c| c != t.len()) {
+                return Err(SettingsError::ThresholdCount { classes, found: t.len() });
+            }
+            if let Some(v) = t.iter().find(|v| !(0.0..=1.0).contains(*v)) {
+                return Err(SettingsError::ThresholdRange(*v));
+            }
+        }
+        Ok(())
+    }
+
+    /// Batch sizes the loop may use: powers of two below `batch`, and `batch`.
+    pub fn batch_sizes(&self) -> Vec<usize> {
+        let mut v: Vec<usize> = (0..).map(|e| 1usize << e).take_while(|&b| b < self.batch).collect();
+        v.push(self.batch);
+        v
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn batch_sizes_are_powers_of_two_below_the_batch_and_the_batch() {
+        let s = |batch| Settings { batch, ..Settings::default() }.batch_sizes();
+        assert_eq!(s(8), vec![1, 2, 4, 8]);
+        assert_eq!(s(12), vec![1, 2, 4, 8, 12]);
+        assert_eq!(s(1), vec![1]);
+    }
+
+    #[test]
+    fn each_range_error_names_its_field() {
+        let d = Settings::default;
+        let cases = [
+            (Settings { budget_ms: f64::NAN, ..d() }, "budget_ms"),
+            (Settings { min_patches: 0, ..d() }, "min_patches"),
+            (Settings { min_patches: 9, max_patches: 8, ..d() }, "max_patches"),
+            (Settings { batch: 257, ..d() }, "batch"),
+            (Settings { interval: 1.0, ..d() }, "interval"),
+            (Settings { samples: 0, ..d() }, "samples"),
+            (Settings { thresholds: Some(vec![0.5, 1.2]), ..d() }, "thresholds"),
+        ];
+        for (s, field) in cases {
+            let e = s.check(None).unwrap_err();
+            assert_eq!(e.field(), field, "{e}");
+            assert!(e.to_string().starts_with(field), "{e}");
+        }
+        // The threshold count is checked once the class count is known.
+        let two = Settings { thresholds: Some(vec![0.5, 0.5]), ..d() };
+        assert!(two.check(None).is_ok());
+        assert_eq!(two.check(Some(3)), Err(SettingsError::ThresholdCount { classes: 3, found: 2 }));
+        assert!(d().check(Some(3)).is_ok());
+    }
+}

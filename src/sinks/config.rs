@@ -1,0 +1,149 @@
+//! The `[log]` and `[evidence]` tables of the daemon's config.
+
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::folders::{self, FolderProblem};
+
+/// Which analysed frames get a record in the detection log.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum RecordPolicy {
+    All,
+    NotClear,
+}
+
+/// When appended lines are forced to stable storage.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum SyncPolicy {
+    /// Leave it to the operating system.
+    Never,
+    /// At most every `sync_interval_s` seconds, and at rotation and exit.
+    Interval,
+    /// After every record.
+    Always,
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LogConfig {
+    /// The JSON Lines detection log.
+    pub path: PathBuf,
+    #[serde(default = "default_records")]
+    pub records: RecordPolicy,
+    /// Rotate when the file would pass this size.
+    #[serde(default = "default_rotate_mb")]
+    pub rotate_mb: f64,
+    /// Rotated files kept (`path.1` … `path.N`).
+    #[serde(default = "default_keep")]
+    pub keep: usize,
+    #[serde(default = "default_sync")]
+    pub sync: SyncPolicy,
+    #[serde(default = "default_sync_interval")]
+    pub sync_interval_s: f64,
+    /// Seconds between health records.
+    #[serde(default = "default_health")]
+    pub health_interval_s: f64,
+}
+
+fn default_records() -> RecordPolicy {
+    RecordPolicy::All
+}
+fn default_rotate_mb() -> f64 {
+    64.0
+}
+fn default_keep() -> usize {
+    5
+}
+fn default_sync() -> SyncPolicy {
+    SyncPolicy::Interval
+}
+fn default_sync_interval() -> f64 {
+    5.0
+}
+fn default_health() -> f64 {
+    60.0
+}
+
+/// Keys left out take their defaults (the reference config lists them).
+#[derive(Clone, Debug, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct EvidenceConfig {
+    pub enabled: bool,
+    /// Folder for evidence images (created if missing).
+    pub dir: PathBuf,
+    /// Total size kept; oldest files are removed first.
+    pub quota_mb: f64,
+    /// Files older than this are removed.
+    pub max_age_hours: f64,
+    /// Full-resolution crops saved per frame (highest weight first).
+    pub crops: usize,
+}
+
+impl Default for EvidenceConfig {
+    fn default() -> Self {
+        Self { enabled: false, dir: PathBuf::from("evidence"), quota_mb: 200.0, max_age_hours: 72.0, crops: 4 }
+    }
+}
+
+/// A `[log]` or `[evidence]` value that cannot be used; `field` names the key.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum SinkConfigError {
+    #[error("{field}: {problem}")]
+    Folder { field: &'static str, problem: FolderProblem },
+    #[error("{field} = {value}: expected a positive number")]
+    NotPositive { field: &'static str, value: f64 },
+    #[error("keep = 0: expected at least 1 rotated file")]
+    Keep,
+}
+
+impl SinkConfigError {
+    /// The key the error is about, within its table.
+    pub fn field(&self) -> &'static str {
+        match self {
+            Self::Folder { field, .. } | Self::NotPositive { field, .. } => field,
+            Self::Keep => "keep",
+        }
+    }
+}
+
+fn positive(field: &'static str, value: f64) -> Result<(), SinkConfigError> {
+    if value > 0.0 && value.is_finite() {
+        Ok(())
+    } else {
+        Err(SinkConfigError::NotPositive { field, value })
+    }
+}
+
+impl LogConfig {
+    /// The folder the log file lives in.
+    pub fn folder(&self) -> &Path {
+        self.path.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."))
+    }
+
+    /// Checks the values, and that the log's folder exists or can be made; writes nothing.
+    pub fn check(&self) -> Result<(), SinkConfigError> {
+        folders::check_writable(self.folder()).map_err(|problem| SinkConfigError::Folder { field: "path", problem })?;
+        positive("rotate_mb", self.rotate_mb)?;
+        if self.keep == 0 {
+            return Err(SinkConfigError::Keep);
+        }
+        positive("sync_interval_s", self.sync_interval_s)?;
+        positive("health_interval_s", self.health_interval_s)
+    }
+}
+
+impl EvidenceConfig {
+    /// Checks the values, and that the folder exists or can be made when evidence is on;
+    /// writes nothing.
+    pub fn check(&self) -> Result<(), SinkConfigError> {
+        if !self.enabled {
+            return Ok(());
+        }
+        folders::check_writable(&self.dir).map_err(|problem| SinkConfigError::Folder { field: "dir", problem })?;
+        positive("quota_mb", self.quota_mb)?;
+        positive("max_age_hours", self.max_age_hours)
+    }
+}
