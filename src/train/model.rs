@@ -133,29 +133,38 @@ pub fn attention(rng: &mut ChaCha8Rng, a: &Arch, stride: u32, gain: f32, cap: f3
     net
 }
 
-/// How far apart two patches' evidence may be: per-class logits are clamped to
-/// `±EVIDENCE_LIMIT` before the exponential.
-pub const EVIDENCE_LIMIT: f32 = 30.0;
-/// Initial sharpness of the evidence: `f = exp(g)` with `g` about this many times the
-/// patch's class logit (see [`head`]).
+/// How far apart two patches' evidence may be: `SHARPNESS · x` is clamped to
+/// `±EVIDENCE_LIMIT` before the exponential (e^40 is far inside f32).
+pub const EVIDENCE_LIMIT: f32 = 40.0;
+/// Sharpness of the evidence: a patch's class score `x` becomes `f = exp(SHARPNESS · x)`
+/// and the head starts as `ln(Psi) / SHARPNESS`, so on one patch the head gives back `x`,
+/// and on a frame the log of the attention on the best patch weighs in only
+/// `1 / SHARPNESS` as much as the patch's own score (see [`features`]).
 pub const SHARPNESS: f32 = 4.0;
+
+/// Width of the per-patch scoring layer.
+const SCORE_HIDDEN: usize = 32;
+/// Offset inside the log of the pooled convolution features.
+const FEATURE_EPS: f32 = 1e-3;
 
 /// Patch → evidence, one value per class: a 3×3 layer at stride 2 (it still sees every
 /// pixel, so a mark of one or two pixels is not lost, at a quarter of the cost of stride
 /// 1), three 3×3 layers with a 2×2 max pool before the last two, all followed by ReLU, a
-/// global max, a dense layer to one score `g_c` per class, and `f_c = exp(g_c)`.
+/// global max, then a small scorer (the log of the pooled features, one hidden ReLU
+/// layer) giving one score `x_c` per class, and `f_c = exp(SHARPNESS · x_c)`.
 ///
 /// Why the exponential: the engine reports `Psi = Σ_i a_i f_i`, an attention-weighted
-/// mean. With `f = exp(g)`, `ln Psi_c = ln Σ_i a_i e^{g_ic}` is a log-sum-exp: close to the
-/// largest `g_ic` among the cells attention looked at, lowered only by the log of that
-/// cell's attention, and `g` is free to make that term small. A mean of plain
+/// mean. With `f = exp(γ x)`, `ln Psi_c / γ = ln (Σ_i a_i e^{γ x_ic}) / γ` is a
+/// log-sum-exp: close to the largest `x_ic` among the cells attention looked at, lowered
+/// only by the log of that cell's attention divided by `γ`. A mean of plain
 /// non-negative features would instead dilute a mark by every look-alike and every cell
 /// of ground that shares the attention, which is what made small defects go missing.
 /// The patch side must be a multiple of 8.
 pub fn features(rng: &mut ChaCha8Rng, a: &Arch, classes: usize) -> Net {
     let [f1, f2, f3, f4] = a.features;
-    let mut score = Conv::dense(rng, f4, classes);
-    score.w.iter_mut().for_each(|w| *w *= SHARPNESS);
+    let mut hidden = Conv::dense(rng, f4, SCORE_HIDDEN);
+    hidden.b = vec![0.1; SCORE_HIDDEN];
+    let score = Conv::dense(rng, SCORE_HIDDEN, classes);
     Net::new(vec![
         Layer::Conv(Conv::new(rng, 3, f1, 3, 2, 1)),
         Layer::Relu,
@@ -168,8 +177,11 @@ pub fn features(rng: &mut ChaCha8Rng, a: &Arch, classes: usize) -> Net {
         conv3(rng, f3, f4),
         Layer::Relu,
         Layer::GlobalMax,
+        Layer::LogRelu(FEATURE_EPS),
+        Layer::Conv(hidden),
+        Layer::Relu,
         Layer::Conv(score),
-        Layer::ClampExp(EVIDENCE_LIMIT),
+        Layer::ClampExp { scale: SHARPNESS, limit: EVIDENCE_LIMIT },
     ])
 }
 

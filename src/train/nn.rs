@@ -259,10 +259,10 @@ pub enum Layer {
     MaxPool(usize),
     /// `[n, h, w, c]` → `[n, 1, 1, c]`.
     GlobalMax,
-    /// `exp(clamp(x, -limit, limit))`: turns per-patch class logits into positive evidence
-    /// whose attention-weighted mean behaves like a maximum over patches (see
+    /// `exp(clamp(scale · x, -limit, limit))`: turns per-patch class logits into positive
+    /// evidence whose attention-weighted mean behaves like a maximum over patches (see
     /// `model::features`); the clamp keeps it finite in f32.
-    ClampExp(f32),
+    ClampExp { scale: f32, limit: f32 },
     /// Pads by `p` on each side repeating the edge values: before a network's first
     /// convolution on a whole thumbnail, so that the frame's border is not an edge.
     PadEdge(usize),
@@ -387,10 +387,10 @@ impl Net {
                 Layer::MaxPool(k) => max_pool(x, *k, *k, y, &mut tape.argmax[i]),
                 Layer::GlobalMax => max_pool(x, x.h, x.w, y, &mut tape.argmax[i]),
                 Layer::PadEdge(p) => pad_edge(x, *p, y, &mut tape.argmax[i]),
-                Layer::ClampExp(limit) => {
+                Layer::ClampExp { scale, limit } => {
                     y.reset(x.n, x.h, x.w, x.c);
                     for (o, &v) in y.data.iter_mut().zip(&x.data) {
-                        *o = v.clamp(-limit, *limit).exp();
+                        *o = (scale * v).clamp(-limit, *limit).exp();
                     }
                 }
             }
@@ -433,10 +433,10 @@ impl Net {
                             *d = if v > 0.0 { g / (v + eps) } else { 0.0 };
                         }
                     }
-                    Layer::ClampExp(limit) => {
+                    Layer::ClampExp { scale, limit } => {
                         let y = &tape.acts[i + 1].data;
                         for (((d, &g), &v), &e) in next.data.iter_mut().zip(&cur.data).zip(&x.data).zip(y) {
-                            *d = if v.abs() < *limit { g * e } else { 0.0 };
+                            *d = if (scale * v).abs() < *limit { g * e * scale } else { 0.0 };
                         }
                     }
                     Layer::MaxPool(_) | Layer::GlobalMax | Layer::PadEdge(_) => {
@@ -488,10 +488,11 @@ impl Net {
                 Layer::MaxPool(k) => g.max_pool_ceil(&h, *k),
                 Layer::GlobalMax => g.global_pool("GlobalMaxPool", &h),
                 Layer::PadEdge(p) => g.pad_edge(&h, *p as i64),
-                Layer::ClampExp(limit) => {
+                Layer::ClampExp { scale, limit } => {
+                    let scaled = g.scale(&h, *scale);
                     let lo = g.constant("clip_min", &[], &[-limit]);
                     let hi = g.constant("clip_max", &[], &[*limit]);
-                    let c = g.node("Clip", &[&h, &lo, &hi], &[]);
+                    let c = g.node("Clip", &[&scaled, &lo, &hi], &[]);
                     g.unary("Exp", &c)
                 }
             };
@@ -696,7 +697,7 @@ mod tests {
             Layer::GlobalMax,
             Layer::LogRelu(0.5),
             Layer::Conv(Conv::dense(&mut rng, 4, 3)),
-            Layer::ClampExp(1.5),
+            Layer::ClampExp { scale: 2.0, limit: 3.0 },
         ]);
         for c in net.convs_mut() {
             c.b = small(&mut rng, c.cout, 0.3).iter().map(|v| v + 0.4).collect();
