@@ -93,6 +93,98 @@ fn f1_and_ece_agree_with_scikit_learn_and_numpy() {
     }
 }
 
+/// The per-class threshold rule of `saccade train` (best held-out F1, ties to the highest
+/// threshold) against scikit-learn's `precision_recall_curve` on the same scores, with
+/// ties among scores and classes without positives.
+#[test]
+fn the_threshold_rule_agrees_with_scikit_learn() {
+    let mut rng = ChaCha8Rng::seed_from_u64(8);
+    let mut cases = Vec::new();
+    for n in [5usize, 40, 200, 333] {
+        for coarse in [false, true] {
+            let truth: Vec<bool> = (0..n).map(|_| rng.random_bool(0.3)).collect();
+            // Positives score higher on average; coarse scores repeat (ties).
+            let scores: Vec<f64> = truth
+                .iter()
+                .map(|&t| {
+                    let v: f64 = rng.random::<f64>() * 0.7 + if t { 0.3 } else { 0.0 };
+                    if coarse {
+                        (v * 10.0).round() / 10.0
+                    } else {
+                        v
+                    }
+                })
+                .collect();
+            cases.push((scores, truth));
+        }
+    }
+    cases.push((vec![0.2, 0.9, 0.4], vec![false, false, false]));
+    let req: Vec<Value> = cases
+        .iter()
+        .map(|(s, t)| json!({"scores": s, "truth": t.iter().map(|&b| b as u8).collect::<Vec<_>>()}))
+        .collect();
+    let out: Value =
+        serde_json::from_str(&common::run_reference("threshold_ref.py", &[], &Value::Array(req).to_string())).unwrap();
+    for ((scores, truth), theirs) in cases.iter().zip(out.as_array().unwrap()) {
+        let ours = metrics::best_f1_threshold(scores, truth);
+        if theirs.is_null() {
+            assert!(ours.is_none(), "no positives: no threshold");
+            continue;
+        }
+        let ours = ours.expect("positives present");
+        let (at, f1) = (theirs["at"].as_f64().unwrap(), theirs["f1"].as_f64().unwrap());
+        assert!(
+            (ours.at - at).abs() < 1e-12 && (ours.f1 - f1).abs() < 1e-12,
+            "{ours:?} vs scikit-learn at {at}, F1 {f1}"
+        );
+        // The threshold used lies between the chosen score and the next lower one.
+        let lower = scores.iter().copied().filter(|&v| v < at).fold(0.0, f64::max);
+        assert!(ours.threshold <= at && ours.threshold > lower || ours.threshold == at, "{ours:?}");
+    }
+}
+
+/// The share of labelled marks in examined cells and the attention on them against a
+/// numpy reference written from the README's definition.
+#[test]
+fn mark_recall_agrees_with_numpy() {
+    use saccade::engine::Geometry;
+    use saccade::eval::marks::MarkTally;
+    use saccade::labels::MarkAt;
+    let mut rng = ChaCha8Rng::seed_from_u64(12);
+    let g = Geometry { frame_w: 300, frame_h: 200, factor: 4, stride: 4, patch: 24, rows: 13, cols: 19 };
+    let classes: Vec<String> = ["a", "b", "c"].iter().map(|s| s.to_string()).collect();
+    let mut tally = MarkTally::new(classes.len());
+    let mut frames = Vec::new();
+    for _ in 0..25 {
+        let mut att: Vec<f64> = (0..g.cells()).map(|_| rng.random::<f64>()).collect();
+        let total: f64 = att.iter().sum();
+        att.iter_mut().for_each(|v| *v /= total);
+        let examined: Vec<usize> = (0..g.cells()).filter(|_| rng.random_bool(0.3)).collect();
+        // Some marks on the frame's edges and outside the whole-cell grid, which clamp.
+        let marks: Vec<MarkAt> = (0..rng.random_range(0..4))
+            .map(|_| MarkAt {
+                class: classes[rng.random_range(0..3)].clone(),
+                x: rng.random_range(0.0..300.0),
+                y: rng.random_range(0.0..200.0),
+                extent: None,
+            })
+            .collect();
+        tally.add(&g, &att, &examined, &marks, &classes);
+        let m: Vec<Value> = marks.iter().map(|m| json!([m.class, m.x, m.y])).collect();
+        frames.push(json!({"attention": att, "examined": examined, "marks": m}));
+    }
+    let req = json!({"cell": 16, "rows": g.rows, "cols": g.cols, "classes": classes, "frames": frames});
+    let theirs: Value = serde_json::from_str(&common::run_reference("marks_ref.py", &[], &req.to_string())).unwrap();
+    assert!((tally.recall().unwrap() - theirs["recall"].as_f64().unwrap()).abs() < 1e-12);
+    assert!((tally.mean_mass().unwrap() - theirs["mass"].as_f64().unwrap()).abs() < 1e-12);
+    for (ours, theirs) in tally.recall_per_class().iter().zip(theirs["per_class"].as_array().unwrap()) {
+        assert_eq!(ours.is_some(), !theirs.is_null());
+        if let Some(v) = ours {
+            assert!((v - theirs.as_f64().unwrap()).abs() < 1e-12);
+        }
+    }
+}
+
 /// A flat grey sheet with discs: `(x, y, r, value)`.
 fn sheet(w: u32, h: u32, discs: &[(i64, i64, i64, u8)]) -> RgbImage {
     let mut img = RgbImage::from_pixel(w, h, image::Rgb([150, 150, 150]));
@@ -244,6 +336,10 @@ fn sweep_exhaustive_row_matches_a_plain_exhaustive_analysis() {
         "deadline_misses",
         "deadline_miss_pct",
         "reviews",
+        "mark_recall",
+        "mark_attention",
+        "recall_dark_spot",
+        "recall_bright_spot",
     ];
     assert_eq!(lines[0], header);
     assert_eq!(csv::header(&classes), header);

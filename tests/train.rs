@@ -69,6 +69,7 @@ fn options(labels: std::path::PathBuf, out: std::path::PathBuf) -> TrainOptions 
             tail: 2,
             learning_rate: 1e-2,
             attention_rate: 0.5,
+            tune_rate: 0.25,
             entropy: 0.0,
             patience: 10,
             val_patches: 8,

@@ -48,9 +48,13 @@ pub struct TrainArgs {
     /// AdamW step size at the start of each stage (cosine decay to a twentieth).
     #[arg(long, default_value_t = 2e-3)]
     pub learning_rate: f64,
-    /// Step size of the attention network relative to the others.
+    /// Step size of the attention network (end to end) relative to --learning-rate.
     #[arg(long, default_value_t = 0.5)]
     pub attention_rate: f64,
+    /// Step size of the feature network and head end to end relative to --learning-rate
+    /// (they arrive trained by the warm-up).
+    #[arg(long, default_value_t = 0.25)]
+    pub tune_rate: f64,
     /// Weight of the attention entropy bonus.
     #[arg(long, default_value_t = 0.0)]
     pub entropy: f64,
@@ -125,6 +129,7 @@ pub fn run(a: TrainArgs) -> anyhow::Result<ExitCode> {
             tail: a.tail,
             learning_rate: a.learning_rate,
             attention_rate: a.attention_rate,
+            tune_rate: a.tune_rate,
             entropy: a.entropy,
             patience: a.patience,
             val_patches: a.val_patches,

@@ -13,7 +13,7 @@ use super::nn::Act;
 use crate::bundle::Normalization;
 use crate::engine::patches::Geometry;
 use crate::engine::thumbnail::area_reduce;
-use crate::labels::{class_matrix, Labelled};
+use crate::labels::{class_matrix, Labelled, MarkAt};
 use crate::source::decode_file;
 
 /// Shape parameters shared by every frame of a training set.
@@ -30,6 +30,8 @@ pub struct Sample {
     /// Thumbnail cut to whole cells, `[th, tw, 3]` bytes, row-major.
     pub thumb: Vec<u8>,
     pub target: Vec<f32>,
+    /// Labelled mark positions, when the labels give them (diagnostics only).
+    pub marks: Vec<MarkAt>,
 }
 
 pub struct Dataset {
@@ -176,32 +178,42 @@ impl Dataset {
             }
             images.push((image, it.name.as_str()));
         }
-        let (w, h) = (images[0].0.width(), images[0].0.height());
+        let frames = images
+            .into_iter()
+            .zip(items)
+            .zip(targets)
+            .map(|(((image, _), it), target)| Sample {
+                name: it.name.clone(),
+                image,
+                thumb: Vec::new(),
+                target: target.iter().map(|&b| b as u8 as f32).collect(),
+                marks: it.marks.clone(),
+            })
+            .collect();
+        Self::new(frames, shape, norm).map_err(|e| anyhow::anyhow!("{}: {e}", labels.display()))
+    }
+
+    /// A dataset of decoded frames (all of one size; their `thumb` is filled in here).
+    pub fn new(mut samples: Vec<Sample>, shape: Shape, norm: &Normalization) -> anyhow::Result<Self> {
+        let (w, h) = (samples[0].image.width(), samples[0].image.height());
         let (rows, cols) = cells(w, h, shape);
         if rows == 0 || cols == 0 {
             anyhow::bail!(
-                "{}: frames of {w}×{h} give no whole attention cell at factor {} and stride {}",
-                labels.display(),
+                "frames of {w}×{h} give no whole attention cell at factor {} and stride {}",
                 shape.factor,
                 shape.stride
             );
         }
         let s = shape.stride as usize;
         let (th, tw) = (rows * s, cols * s);
-        let samples = images
-            .into_iter()
-            .zip(items)
-            .zip(targets)
-            .map(|(((image, _), it), target)| {
-                let t = area_reduce(&image, shape.factor);
-                let full_w = t.width() as usize;
-                let mut thumb = Vec::with_capacity(th * tw * 3);
-                for y in 0..th {
-                    thumb.extend_from_slice(&t.as_raw()[y * full_w * 3..][..tw * 3]);
-                }
-                Sample { name: it.name.clone(), image, thumb, target: target.iter().map(|&b| b as u8 as f32).collect() }
-            })
-            .collect();
+        for sample in &mut samples {
+            let t = area_reduce(&sample.image, shape.factor);
+            let full_w = t.width() as usize;
+            sample.thumb.clear();
+            for y in 0..th {
+                sample.thumb.extend_from_slice(&t.as_raw()[y * full_w * 3..][..tw * 3]);
+            }
+        }
         let geometry = Geometry {
             frame_w: w,
             frame_h: h,

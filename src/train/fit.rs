@@ -44,8 +44,11 @@ pub struct FitOptions {
     /// Draws from the remaining attention per frame and step.
     pub tail: usize,
     pub learning_rate: f64,
-    /// Learning rate of the attention network relative to the others.
+    /// Learning rate of the attention network (end to end) relative to `learning_rate`.
     pub attention_rate: f64,
+    /// Learning rate of the feature network and head end to end, relative to
+    /// `learning_rate`: they arrive trained by the warm-up and need only adjusting.
+    pub tune_rate: f64,
     /// Weight β of the attention entropy bonus `−β H(a) / ln N`.
     pub entropy: f64,
     /// Epochs without a better validation loss before a stage stops.
@@ -95,7 +98,7 @@ struct Selection {
 /// Exponent of the tail's proposal: draws follow `a^TEMPER` over the remaining cells, so
 /// cells that attention ranks low (a faint mark it has not learnt yet) are examined more
 /// often than attention alone would; their weights `a / q` keep the estimate unbiased.
-const TEMPER: f64 = 0.5;
+const TEMPER: f64 = 1.0;
 
 /// The top cells and `tail` draws from the rest (see the module notes).
 fn select(a: &[f64], top: usize, tail: usize, rng: &mut ChaCha8Rng) -> Selection {
@@ -374,6 +377,28 @@ fn validate_stage(
     (results.into_iter().map(|r| r.0).collect(), loss)
 }
 
+/// Where the sampled model looks on `frames`, as validation does it (priority sampling of
+/// `k` cells with the draws of `seed`): each frame's attention and the cells examined.
+pub fn examined(
+    m: &Sampled,
+    data: &Dataset,
+    frames: &[usize],
+    k: usize,
+    seed: u64,
+    threads: usize,
+) -> Vec<(Vec<f64>, Vec<usize>)> {
+    let mut workers: Vec<Worker> = (0..threads.max(1)).map(|_| Worker::new(m)).collect();
+    let plain = View::plain(&data.norm);
+    let out = parallel(frames, &mut workers, |w, &i| {
+        let mut rng = ChaCha8Rng::seed_from_u64(seed ^ (i as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15));
+        let thumb = data.thumbnail(i, &plain, &mut w.scratch, w.at.recycle_input());
+        let a = softmax(&m.attention.forward(thumb, &mut w.at).data);
+        let cells = priority(&a, k, &mut rng).cells;
+        (a, cells)
+    });
+    out.into_iter().flatten().collect()
+}
+
 /// Probabilities and mean loss of the thumbnail-only network on `frames`.
 pub fn validate_baseline(b: &Net, data: &Dataset, frames: &[usize], threads: usize) -> (Vec<Vec<f64>>, f64) {
     let mut scratch: Vec<Vec<f32>> = vec![Vec::new(); threads.max(1)];
@@ -464,6 +489,72 @@ impl<T: Clone> Keeper<T> {
     }
 }
 
+/// The optimiser state and worker buffers of one stage: one [`Stepper::step`] per batch.
+pub struct Stepper {
+    stage: Stage,
+    opt: [AdamW; 3],
+    workers: Vec<Worker>,
+}
+
+impl Stepper {
+    pub fn new(m: &Sampled, stage: Stage, threads: usize) -> Self {
+        Self {
+            stage,
+            opt: [AdamW::new(&m.attention, 1e-4), AdamW::new(&m.features, 1e-4), AdamW::new(&m.head, 1e-4)],
+            workers: (0..threads.max(1)).map(|_| Worker::new(m)).collect(),
+        }
+    }
+
+    /// One optimiser step on the frames `chunk` at learning rate `lr`; returns the summed
+    /// loss over frames and classes.
+    pub fn step(
+        &mut self,
+        m: &mut Sampled,
+        data: &Dataset,
+        chunk: &[usize],
+        o: &FitOptions,
+        lr: f32,
+        rng: &mut ChaCha8Rng,
+    ) -> f64 {
+        let end_to_end = self.stage == Stage::EndToEnd;
+        let jobs: Vec<(usize, View, u64)> =
+            chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng), rng.random())).collect();
+        let scale = (chunk.len() * data.samples[0].target.len()) as f32;
+        let model = &*m;
+        self.workers.iter_mut().for_each(Worker::zero);
+        let done = parallel(&jobs, &mut self.workers, |w, (i, view, s)| {
+            if !end_to_end {
+                return model.instance_step(data, *i, view, o.top, Some(scale), w).1;
+            }
+            let mut r = ChaCha8Rng::seed_from_u64(*s);
+            let pass = model.frame_forward(data, *i, view, |a| select(a, o.top, o.tail, &mut r), w);
+            let mut dz = vec![0f32; pass.logits.len()];
+            let loss = bce(&pass.logits, &data.samples[*i].target, scale, &mut dz);
+            model.frame_backward(&pass, &dz, true, o.entropy / chunk.len() as f64, w);
+            loss
+        });
+        let (mut ga, mut gf, mut gh) = (m.attention.grads(), m.features.grads(), m.head.grads());
+        let mut total = 0.0;
+        for (w, losses) in self.workers.iter().zip(&done) {
+            ga.add(&w.ga);
+            gf.add(&w.gf);
+            gh.add(&w.gh);
+            total += losses.iter().sum::<f64>() * scale as f64;
+        }
+        let tuned = if end_to_end {
+            clip(&mut [&mut ga, &mut gf, &mut gh]);
+            self.opt[0].step(&mut m.attention, &ga, lr * o.attention_rate as f32);
+            lr * o.tune_rate as f32
+        } else {
+            clip(&mut [&mut gf, &mut gh]);
+            lr
+        };
+        self.opt[1].step(&mut m.features, &gf, tuned);
+        self.opt[2].step(&mut m.head, &gh, tuned);
+        total
+    }
+}
+
 /// One stage of the sampled model. Early stopping compares every epoch with the weights
 /// the stage started from, so a stage that only makes validation worse changes nothing.
 #[allow(clippy::too_many_arguments)]
@@ -487,61 +578,26 @@ pub fn fit_sampled(
     let (_, entry_loss) = validate_stage(m, stage, data, val, k, seed, o.threads);
     log::info!("{}: validation loss {entry_loss:.4} at the start", stage.name());
     let mut keeper = Keeper::new(m, entry_loss);
-    let train_attention = stage == Stage::EndToEnd;
-    let mut opt = [AdamW::new(&m.attention, 1e-4), AdamW::new(&m.features, 1e-4), AdamW::new(&m.head, 1e-4)];
+    let mut stepper = Stepper::new(m, stage, o.threads);
     let mut order = train.to_vec();
-    let steps = order.len().div_ceil(o.batch);
-    let mut workers: Vec<Worker> = (0..o.threads.max(1)).map(|_| Worker::new(m)).collect();
+    let classes = data.samples[0].target.len() as f64;
     for epoch in 1..=epochs {
         let t0 = Instant::now();
         let lr = cosine(o.learning_rate, epoch, epochs) as f32;
         order.shuffle(rng);
-        let b = bar(bars, steps, format!("{} epoch {epoch}/{epochs}", stage.name()));
+        let b = bar(bars, order.len().div_ceil(o.batch), format!("{} epoch {epoch}/{epochs}", stage.name()));
         let mut total = 0.0;
         for chunk in order.chunks(o.batch) {
-            let jobs: Vec<(usize, View, u64)> =
-                chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng), rng.random())).collect();
-            let scale = (chunk.len() * data.samples[0].target.len()) as f32;
-            let model = &*m;
-            workers.iter_mut().for_each(Worker::zero);
-            let done = parallel(&jobs, &mut workers, |w, (i, view, s)| {
-                if stage == Stage::Warmup {
-                    return model.instance_step(data, *i, view, o.top, Some(scale), w).1;
-                }
-                let mut r = ChaCha8Rng::seed_from_u64(*s);
-                let pass = model.frame_forward(data, *i, view, |a| select(a, o.top, o.tail, &mut r), w);
-                let mut dz = vec![0f32; pass.logits.len()];
-                let loss = bce(&pass.logits, &data.samples[*i].target, scale, &mut dz);
-                model.frame_backward(&pass, &dz, train_attention, o.entropy / chunk.len() as f64, w);
-                loss
-            });
-            let (mut ga, mut gf, mut gh) = (m.attention.grads(), m.features.grads(), m.head.grads());
-            for (w, losses) in workers.iter().zip(&done) {
-                ga.add(&w.ga);
-                gf.add(&w.gf);
-                gh.add(&w.gh);
-                total += losses.iter().sum::<f64>() * scale as f64;
-            }
-            if train_attention {
-                clip(&mut [&mut ga, &mut gf, &mut gh]);
-                opt[0].step(&mut m.attention, &ga, lr * o.attention_rate as f32);
-            } else {
-                clip(&mut [&mut gf, &mut gh]);
-            }
-            opt[1].step(&mut m.features, &gf, lr);
-            opt[2].step(&mut m.head, &gh, lr);
+            total += stepper.step(m, data, chunk, o, lr, rng);
             b.inc(1);
-            b.set_message(format!(
-                "loss {:.4}",
-                total / (b.position() as f64 * o.batch as f64 * data.samples[0].target.len() as f64)
-            ));
+            b.set_message(format!("loss {:.4}", total / (b.position() as f64 * o.batch as f64 * classes)));
         }
         b.finish_and_clear();
         let (probs, val_loss) = validate_stage(m, stage, data, val, k, seed, o.threads);
         let entry = EpochLog {
             model: stage.name(),
             epoch,
-            train_loss: total / (order.len() * data.samples[0].target.len()) as f64,
+            train_loss: total / (order.len() as f64 * classes),
             val_loss,
             val_macro_f1: macro_f1(&probs, data, val),
             seconds: t0.elapsed().as_secs_f64(),

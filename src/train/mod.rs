@@ -16,6 +16,7 @@ use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
 use crate::bundle::{Activation, Manifest, NetworkRef, Normalization, FORMAT, MANIFEST};
+use crate::eval::marks::MarkTally;
 use crate::eval::metrics::{best_f1_threshold, f1, predict};
 use data::{Dataset, Shape};
 use fit::{fit_baseline, fit_sampled, validate, validate_baseline, EpochLog, FitOptions, Sampled, Stage};
@@ -52,6 +53,11 @@ pub struct HeldOut {
     pub macro_f1: f64,
     /// The thumbnail-only network's macro F1 at its own best thresholds.
     pub baseline_macro_f1: Option<f64>,
+    /// With mark positions in the labels: the share of held-out marks in cells that
+    /// validation examined, overall and per class, and the attention on their cells.
+    pub mark_recall: Option<f64>,
+    pub mark_recall_per_class: Vec<Option<f64>>,
+    pub mark_attention: Option<f64>,
 }
 
 pub struct Trained {
@@ -151,13 +157,31 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
         let (p, _) = validate_baseline(b, &data, val, o.fit.threads);
         f1(&truth, &predict(&p, &choose_thresholds(&classes, &p, &truth))).macro_f1
     });
+    let mut marks = MarkTally::new(classes.len());
+    if val.iter().any(|&i| !data.samples[i].marks.is_empty()) {
+        for (&i, (a, cells)) in
+            val.iter().zip(fit::examined(&m, &data, val, o.fit.val_patches, check_seed, o.fit.threads))
+        {
+            marks.add(&data.geometry, &a, &cells, &data.samples[i].marks, &classes);
+        }
+    }
     let held_out = HeldOut {
         frames: val.len(),
         thresholds: thresholds.clone(),
         per_class_f1: scored.per_class,
         macro_f1: scored.macro_f1,
         baseline_macro_f1,
+        mark_recall: marks.recall(),
+        mark_recall_per_class: marks.recall_per_class(),
+        mark_attention: marks.mean_mass(),
     };
+    if let Some(r) = held_out.mark_recall {
+        log::info!(
+            "held out: {:.1} % of labelled marks in examined cells ({} patches per frame)",
+            100.0 * r,
+            o.fit.val_patches
+        );
+    }
     log::info!(
         "held out: macro F1 {:.3} (per class {}) at thresholds [{}]",
         held_out.macro_f1,

@@ -25,13 +25,14 @@ pub struct Arch {
 }
 
 impl Arch {
-    pub const PRESETS: [&'static str; 2] = ["standard", "small"];
+    pub const PRESETS: [&'static str; 3] = ["standard", "small", "wide"];
 
     pub fn preset(name: &str) -> Option<Self> {
         let standard = Self { attention: [8, 8, 16], features: [16, 16, 32, 32], baseline: [12, 16, 32, 32] };
         match name {
             "standard" => Some(standard),
             "small" => Some(Self { features: [8, 12, 24, 24], ..standard }),
+            "wide" => Some(Self { features: [24, 32, 48, 64], ..standard }),
             _ => None,
         }
     }

@@ -262,7 +262,10 @@ pub enum Layer {
     /// `exp(clamp(scale · x, -limit, limit))`: turns per-patch class logits into positive
     /// evidence whose attention-weighted mean behaves like a maximum over patches (see
     /// `model::features`); the clamp keeps it finite in f32.
-    ClampExp { scale: f32, limit: f32 },
+    ClampExp {
+        scale: f32,
+        limit: f32,
+    },
     /// Pads by `p` on each side repeating the edge values: before a network's first
     /// convolution on a whole thumbnail, so that the frame's border is not an edge.
     PadEdge(usize),
