@@ -64,8 +64,10 @@ fn options(labels: std::path::PathBuf, out: std::path::PathBuf) -> TrainOptions 
         fit: FitOptions {
             epochs: 3,
             warmup: 3,
+            attention_epochs: 2,
             batch: 3,
             top: 6,
+            warmup_top: 8,
             tail: 2,
             learning_rate: 1e-2,
             attention_rate: 0.5,

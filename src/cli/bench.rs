@@ -24,9 +24,9 @@ use super::demo::parse_size;
 /// Measure per-stage costs (min / median / max over repeats) on this machine.
 #[derive(Args)]
 pub struct BenchArgs {
-    /// Model bundle folder (holding bundle.toml).
+    /// Model bundle folder (holding bundle.toml); needed unless --train-step.
     #[arg(long)]
-    pub bundle: PathBuf,
+    pub bundle: Option<PathBuf>,
     /// Frame to use; without it a demo frame of --size is generated and JPEG-encoded.
     #[arg(long)]
     pub frame: Option<PathBuf>,
@@ -42,6 +42,19 @@ pub struct BenchArgs {
     /// Print JSON instead of a table.
     #[arg(long)]
     pub json: bool,
+    /// Time one end-to-end step of `saccade train` on generated frames of --size instead
+    /// of a bundle's stages (compare with tests/bench/train_step.py).
+    #[cfg(feature = "train")]
+    #[arg(long)]
+    pub train_step: bool,
+    /// Frames per training step (with --train-step).
+    #[cfg(feature = "train")]
+    #[arg(long, default_value_t = 8)]
+    pub step_frames: usize,
+    /// Worker threads of the training step (with --train-step) [default: one per core].
+    #[cfg(feature = "train")]
+    #[arg(long)]
+    pub threads: Option<usize>,
 }
 
 #[derive(Serialize)]
@@ -97,10 +110,17 @@ fn timed(f: impl FnOnce()) -> Duration {
 }
 
 pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
+    #[cfg(feature = "train")]
+    if args.train_step {
+        return train_step(&args);
+    }
+    let Some(bundle_dir) = &args.bundle else {
+        anyhow::bail!("--bundle is required: the bundle whose stages to time");
+    };
     let n = args.repeats.max(1);
     let settings = Settings::default();
     let sizes = [1usize, 4, 16];
-    let bundle = Arc::new(Bundle::load(&args.bundle, &sizes)?);
+    let bundle = Arc::new(Bundle::load(bundle_dir, &sizes)?);
     let m = bundle.manifest.clone();
     let (bytes, origin) = match &args.frame {
         Some(p) => (std::fs::read(p).with_context(|| format!("reading {}", p.display()))?, p.display().to_string()),
@@ -242,7 +262,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     if args.json {
         println!("{}", serde_json::to_string_pretty(&out)?);
     } else {
-        println!("{} ({}×{}), {} repeats, bundle {}", out.frame, fw, fh, n, args.bundle.display());
+        println!("{} ({}×{}), {} repeats, bundle {}", out.frame, fw, fh, n, bundle_dir.display());
         let w = out.stages.iter().map(|s| s.stage.chars().count()).max().unwrap_or(5);
         println!("{:<w$} {:>9} {:>9} {:>9}", "stage", "min ms", "median ms", "max ms");
         for s in &out.stages {
@@ -263,6 +283,53 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
         println!(
             "  dense   {:>7.1} ms → at most {:>5.1} frames/s on one core, {:>5.1} frames/s pipelined ({} cells)",
             d.median_ms, d.frames_per_s, d.frames_per_s_pipelined, d.cells
+        );
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// `--train-step`: the step of `saccade train`'s end-to-end stage with its default shape
+/// (24 top and 8 tail patches per frame, the standard networks) on generated frames.
+#[cfg(feature = "train")]
+fn train_step(args: &BenchArgs) -> anyhow::Result<ExitCode> {
+    use saccade::train::bench::{time_step, StepBench};
+    use saccade::train::data::Shape;
+    use saccade::train::model::Arch;
+
+    let frames = (0..args.step_frames.max(1))
+        .map(|i| {
+            let s = scene::generate(args.size.0, args.size.1, 1 + i as u64);
+            let target = scene::CLASSES.iter().map(|c| s.defects.iter().any(|d| d.kind.name() == *c) as u8 as f32);
+            (s.image, target.collect())
+        })
+        .collect();
+    let threads = args.threads.unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()));
+    let t = time_step(StepBench {
+        frames,
+        shape: Shape { factor: 8, stride: 4, patch: 48 },
+        arch: Arch::default(),
+        top: 24,
+        tail: 8,
+        threads,
+        repeats: args.repeats,
+    })?;
+    if args.json {
+        println!("{}", serde_json::to_string_pretty(&t)?);
+    } else {
+        println!(
+            "training step ({}, {} thread(s)): {} frames of {}x{}, thumbnail {}x{}, {} patches per frame",
+            t.implementation,
+            t.threads,
+            t.frames,
+            args.size.0,
+            args.size.1,
+            t.thumbnail[1],
+            t.thumbnail[0],
+            t.patches_per_frame
+        );
+        println!(
+            "median {:.1} ms per step (min {:.1}), {:.1} ms per frame",
+            t.median_ms_per_step, t.min_ms_per_step, t.median_ms_per_frame
         );
     }
     Ok(ExitCode::SUCCESS)

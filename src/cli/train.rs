@@ -36,12 +36,19 @@ pub struct TrainArgs {
     /// local-contrast form, training only the feature network and head.
     #[arg(long, default_value_t = 20)]
     pub warmup_epochs: usize,
+    /// Epochs after the warm-up that teach the attention network, alone, what the
+    /// warmed-up feature network sees in each cell.
+    #[arg(long, default_value_t = 10)]
+    pub attention_epochs: usize,
     /// Frames per step.
     #[arg(long, default_value_t = 8)]
     pub batch: usize,
-    /// Cells of highest attention examined per frame and step.
+    /// Cells of highest attention examined per frame and step end to end.
     #[arg(long, default_value_t = 24)]
     pub top: usize,
+    /// Cells of highest initial attention examined per frame and step in the warm-up.
+    #[arg(long, default_value_t = 96)]
+    pub warmup_top: usize,
     /// Further cells drawn per frame and step from the remaining attention.
     #[arg(long, default_value_t = 8)]
     pub tail: usize,
@@ -103,10 +110,15 @@ pub struct TrainArgs {
 }
 
 pub fn run(a: TrainArgs) -> anyhow::Result<ExitCode> {
-    if !(0.0..1.0).contains(&a.validation) || a.epochs == 0 || a.batch == 0 || a.top + a.tail == 0 || a.val_patches == 0
+    if !(0.0..1.0).contains(&a.validation)
+        || a.epochs == 0
+        || a.batch == 0
+        || a.top + a.tail == 0
+        || a.warmup_top == 0
+        || a.val_patches == 0
     {
         anyhow::bail!(
-            "--validation must be in [0, 1); --epochs, --batch, --val-patches and --top + --tail must be positive"
+            "--validation must be in [0, 1); --epochs, --batch, --warmup-top, --val-patches and --top + --tail must be positive"
         );
     }
     if !(0.0..1.0).contains(&a.gain_jitter) || !(0.0..=128.0).contains(&a.offset_jitter) {
@@ -126,6 +138,8 @@ pub fn run(a: TrainArgs) -> anyhow::Result<ExitCode> {
             warmup: a.warmup_epochs,
             batch: a.batch,
             top: a.top,
+            warmup_top: a.warmup_top,
+            attention_epochs: a.attention_epochs,
             tail: a.tail,
             learning_rate: a.learning_rate,
             attention_rate: a.attention_rate,

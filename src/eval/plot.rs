@@ -29,10 +29,14 @@ pub struct SweepPlot {
 const WHITE: Rgb<u8> = Rgb([255, 255, 255]);
 const INK: Rgb<u8> = Rgb([40, 40, 40]);
 const GRID: Rgb<u8> = Rgb([225, 225, 225]);
-pub const BLUE: Rgb<u8> = Rgb([31, 119, 180]);
-pub const ORANGE: Rgb<u8> = Rgb([255, 127, 14]);
-pub const RED: Rgb<u8> = Rgb([214, 39, 40]);
-pub const GREEN: Rgb<u8> = Rgb([44, 160, 44]);
+// The project's own palette (deep ink blue, amber, brick, pine, plum, moss), chosen to
+// stay apart in greyscale print as well as in colour.
+pub const BLUE: Rgb<u8> = Rgb([36, 62, 140]);
+pub const ORANGE: Rgb<u8> = Rgb([232, 160, 32]);
+pub const RED: Rgb<u8> = Rgb([170, 52, 40]);
+pub const GREEN: Rgb<u8> = Rgb([28, 112, 84]);
+const PLUM: Rgb<u8> = Rgb([120, 64, 130]);
+const MOSS: Rgb<u8> = Rgb([120, 128, 40]);
 const GREY: Rgb<u8> = Rgb([140, 140, 140]);
 const SCALE: u32 = 2;
 
@@ -51,10 +55,11 @@ impl Area {
     }
 }
 
-/// Logarithmic budget axis.
+/// Horizontal axis: logarithmic for budgets, linear for epochs.
 struct XAxis {
     lo: f64,
     hi: f64,
+    log: bool,
 }
 
 impl XAxis {
@@ -62,14 +67,22 @@ impl XAxis {
         let finite = budgets.iter().copied().filter(|b| b.is_finite() && *b > 0.0);
         let (lo, hi) = finite.fold((f64::INFINITY, 0.0f64), |(l, h), b| (l.min(b), h.max(b)));
         if !(lo.is_finite() && hi > 0.0) {
-            return Self { lo: 1.0, hi: 1000.0 };
+            return Self { lo: 1.0, hi: 1000.0, log: true };
         }
         // A margin on both sides keeps the first and last markers off the frame.
-        Self { lo: lo / 1.3, hi: if hi > lo { hi * 1.3 } else { hi * 1.69 } }
+        Self { lo: lo / 1.3, hi: if hi > lo { hi * 1.3 } else { hi * 1.69 }, log: true }
+    }
+
+    fn linear(lo: f64, hi: f64) -> Self {
+        Self { lo, hi: if hi > lo { hi } else { lo + 1.0 }, log: false }
     }
 
     fn px(&self, v: f64, a: &Area) -> i64 {
-        let t = (v.ln() - self.lo.ln()) / (self.hi.ln() - self.lo.ln());
+        let t = if self.log {
+            (v.ln() - self.lo.ln()) / (self.hi.ln() - self.lo.ln())
+        } else {
+            (v - self.lo) / (self.hi - self.lo)
+        };
         a.x0 + (t * (a.x1 - a.x0) as f64).round() as i64
     }
 }
@@ -204,7 +217,8 @@ fn draw_line(img: &mut RgbImage, a: &Area, x: &XAxis, y: &YAxis, line: &Line) {
     }
 }
 
-/// Frame, grid, ticks and labels of one panel, then its lines and legend.
+/// Frame, grid, ticks and labels of one panel, then its lines and legend; `budgets` are
+/// the x ticks.
 #[allow(clippy::too_many_arguments)] // one call per panel, each argument a different part of it
 fn panel(
     img: &mut RgbImage,
@@ -326,11 +340,58 @@ pub fn render(p: &SweepPlot) -> RgbImage {
     img
 }
 
+/// One panel of [`render_curves`]: named series of `(x, y)` points.
+#[derive(Clone, Debug)]
+pub struct CurvePanel {
+    pub title: String,
+    pub series: Vec<(String, Vec<(f64, f64)>)>,
+}
+
+/// Two panels of curves over a shared linear x axis (a training run's losses and scores
+/// against epochs), each series in its own colour with markers.
+pub fn render_curves(top: &CurvePanel, bottom: &CurvePanel, x_title: &str) -> RgbImage {
+    const COLORS: [Rgb<u8>; 6] = [BLUE, ORANGE, RED, GREEN, PLUM, MOSS];
+    let mut img = RgbImage::from_pixel(WIDTH, HEIGHT, WHITE);
+    let xs = || top.series.iter().chain(&bottom.series).flat_map(|(_, p)| p.iter().map(|q| q.0));
+    let (lo, hi) = range(xs());
+    let (lo, hi) = if lo.is_finite() { (lo, hi) } else { (0.0, 1.0) };
+    let ticks = YAxis::nice(lo, hi);
+    let x = XAxis::linear(ticks.lo, ticks.hi);
+    let areas = [Area { x0: 84, x1: 724, y0: 34, y1: 214 }, Area { x0: 84, x1: 724, y0: 300, y1: 480 }];
+    for (p, a) in [top, bottom].into_iter().zip(areas) {
+        let (lo, hi) = range(p.series.iter().flat_map(|(_, s)| s.iter().map(|q| q.1)));
+        let (lo, hi) = if lo.is_finite() { (lo, hi) } else { (0.0, 1.0) };
+        let y = YAxis::nice(lo, hi + (hi - lo) * 0.05);
+        let color = |i: usize| COLORS[i % COLORS.len()];
+        let lines: Vec<Line> = p
+            .series
+            .iter()
+            .enumerate()
+            .map(|(i, (_, pts))| Line { points: pts.clone(), color: color(i), dashed: false, markers: true })
+            .collect();
+        let legend: Vec<LegendEntry> = p
+            .series
+            .iter()
+            .enumerate()
+            .map(|(i, (name, _))| LegendEntry { label: name.clone(), color: color(i), dashed: false })
+            .collect();
+        panel(&mut img, a, &x, &y, &p.title, &ticks.ticks(), &lines, &legend);
+    }
+    let b = areas[1];
+    draw_text(&mut img, (b.x0 + b.x1) / 2 - text_width(x_title, SCALE) as i64 / 2, b.y1 + 34, x_title, SCALE, INK);
+    img
+}
+
+/// An image as PNG bytes.
+pub fn png_bytes(img: &RgbImage) -> Vec<u8> {
+    let mut buf = std::io::Cursor::new(Vec::new());
+    img.write_to(&mut buf, ImageFormat::Png).expect("PNG encoding into memory cannot fail");
+    buf.into_inner()
+}
+
 /// The plot as PNG bytes.
 pub fn png(p: &SweepPlot) -> Vec<u8> {
-    let mut buf = std::io::Cursor::new(Vec::new());
-    render(p).write_to(&mut buf, ImageFormat::Png).expect("PNG encoding into memory cannot fail");
-    buf.into_inner()
+    png_bytes(&render(p))
 }
 
 /// Writes the plot as a PNG file.
@@ -367,6 +428,22 @@ mod tests {
         assert!(count(&img, GREEN, 34..215) > 100, "baseline reference in the top panel");
         assert!(count(&img, ORANGE, 300..481) > 200, "p99 line in the bottom panel");
         assert_eq!(count(&img, RED, 300..481), 0);
+    }
+
+    #[test]
+    fn curves_go_to_their_panels_in_their_colours() {
+        let rising: Vec<(f64, f64)> = (1..=12).map(|e| (e as f64, e as f64 / 12.0)).collect();
+        let falling: Vec<(f64, f64)> = (1..=12).map(|e| (e as f64, 1.0 / e as f64)).collect();
+        let top =
+            CurvePanel { title: "loss".into(), series: vec![("a".into(), falling.clone()), ("b".into(), falling)] };
+        let bottom = CurvePanel { title: "F1".into(), series: vec![("a".into(), rising)] };
+        let img = render_curves(&top, &bottom, "epoch");
+        assert_eq!(img.dimensions(), (WIDTH, HEIGHT));
+        // The second series is drawn over the first where they coincide, so the top panel
+        // shows orange, and only the bottom one blue.
+        assert!(count(&img, ORANGE, 34..215) > 200, "second series in the top panel");
+        assert!(count(&img, BLUE, 300..481) > 200, "first series in the bottom panel");
+        assert_eq!(count(&img, ORANGE, 300..481), 0);
     }
 
     #[test]

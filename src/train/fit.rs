@@ -18,6 +18,13 @@
 //! step, instead of a few lucky draws. Frames are independent given the weights, so each
 //! of the `threads` workers takes its share of a step's frames with its own buffers, and
 //! their gradients are summed.
+//!
+//! Training runs in three stages, each kept only where it improves its validation loss.
+//! The warm-up trains the feature network and head on single patches (multiple-instance
+//! learning with a max over the initial attention's top cells); the attention stage then
+//! teaches the attention network, alone, which cells the warmed-up patch classifier finds
+//! the frame's classes in (thin lines that nearly vanish in the thumbnail are found there
+//! at full resolution); and the end-to-end stage tunes all three through the estimator.
 
 use std::time::Instant;
 
@@ -37,10 +44,17 @@ pub struct FitOptions {
     /// Epochs before it with the attention held at its initial form, training only the
     /// feature network and head.
     pub warmup: usize,
+    /// Epochs between the two that teach the attention network what the warmed-up
+    /// feature network and head see.
+    pub attention_epochs: usize,
     /// Frames per step.
     pub batch: usize,
-    /// Cells of highest attention summed exactly per frame and step.
+    /// Cells of highest attention summed exactly per frame and step, end to end.
     pub top: usize,
+    /// Cells of highest initial attention per frame and step in the warm-up: more than
+    /// `top`, so that faint or thin marks the initial attention ranks low are still among
+    /// the patches a labelled frame trains on.
+    pub warmup_top: usize,
     /// Draws from the remaining attention per frame and step.
     pub tail: usize,
     pub learning_rate: f64,
@@ -99,6 +113,14 @@ struct Selection {
 /// cells that attention ranks low (a faint mark it has not learnt yet) are examined more
 /// often than attention alone would; their weights `a / q` keep the estimate unbiased.
 const TEMPER: f64 = 1.0;
+
+/// Cells of highest current attention the attention stage examines besides the entry
+/// attention's top cells.
+const ATTENTION_TOP: usize = 24;
+/// Cells drawn uniformly per frame and step in the attention stage.
+const EXPLORE: usize = 32;
+/// Patches per frame for the probabilities the attention stage reports.
+const VAL_PATCHES: usize = 64;
 
 /// The top cells and `tail` draws from the rest (see the module notes).
 fn select(a: &[f64], top: usize, tail: usize, rng: &mut ChaCha8Rng) -> Selection {
@@ -270,6 +292,77 @@ impl Sampled {
         (frame, loss)
     }
 
+    /// The attention stage's objective on one frame: the attention network learns, cell by
+    /// cell, what the warm-up's feature network and head see in the patch there. The
+    /// examined cells are the `entry` attention's top `top` (the cells the warm-up trained
+    /// on), the current attention's top [`ATTENTION_TOP`] (so that what it has come to
+    /// rank high is checked) and [`EXPLORE`] cells drawn uniformly (background). Each
+    /// cell's target is the head's largest probability over the classes the frame carries
+    /// (0 on a frame without classes), and its score `s` is fitted to it by binary cross
+    /// entropy on `σ(s)`, so a mark's cells rise and look-alikes and background sink.
+    /// Returns the mean loss over the cells; with `learn` (frames in the step) the
+    /// gradients go to the attention network.
+    #[allow(clippy::too_many_arguments)]
+    fn attention_step(
+        &self,
+        entry: &Net,
+        data: &Dataset,
+        i: usize,
+        view: &View,
+        top: usize,
+        seed: u64,
+        learn: Option<f32>,
+        w: &mut Worker,
+    ) -> f64 {
+        let thumb = data.thumbnail(i, view, &mut w.scratch, w.at.recycle_input());
+        let held = softmax(&entry.infer(thumb.clone()).data);
+        let s = self.attention.forward(thumb, &mut w.at).data.clone();
+        let mut cells = select(&held, top, 0, &mut ChaCha8Rng::seed_from_u64(0)).cells;
+        for c in select(&softmax(&s), ATTENTION_TOP, 0, &mut ChaCha8Rng::seed_from_u64(0)).cells {
+            if !cells.contains(&c) {
+                cells.push(c);
+            }
+        }
+        let mut rng = ChaCha8Rng::seed_from_u64(seed);
+        for _ in 0..EXPLORE {
+            let c = rng.random_range(0..s.len());
+            if !cells.contains(&c) {
+                cells.push(c);
+            }
+        }
+        let p = data.geometry.patch as usize;
+        let mut patches = w.ft.recycle_input();
+        for &c in &cells {
+            data.patch(i, view, c, &mut w.scratch, &mut patches);
+        }
+        let n = cells.len();
+        let f = self.features.forward(Act::new(n, p, p, 3, patches), &mut w.ft).data.clone();
+        let z = self.head.forward(Act::new(n, 1, 1, f.len() / n, f), &mut w.ht).data.clone();
+        let target = &data.samples[i].target;
+        let classes = target.len();
+        let (scores, teacher): (Vec<f32>, Vec<f32>) = cells
+            .iter()
+            .enumerate()
+            .map(|(j, &c)| {
+                let t = (0..classes)
+                    .filter(|&k| target[k] > 0.5)
+                    .map(|k| sigmoid(z[j * classes + k]))
+                    .fold(0.0f32, f32::max);
+                (s[c], t)
+            })
+            .unzip();
+        let mut d = vec![0f32; n];
+        let loss = bce(&scores, &teacher, n as f32, &mut d);
+        if let Some(frames) = learn {
+            let mut ds = vec![0f32; s.len()];
+            for (&c, g) in cells.iter().zip(&d) {
+                ds[c] = g / frames;
+            }
+            self.attention.backward(&mut w.at, &ds, &mut w.ga, false);
+        }
+        loss
+    }
+
     /// Backward pass of one frame from `dz` (gradient at its logits).
     fn frame_backward(&self, pass: &FramePass, dz: &[f32], train_attention: bool, entropy: f64, w: &mut Worker) {
         let dpsi = self.head.backward(&mut w.ht, dz, &mut w.gh, true).expect("input gradient").data.clone();
@@ -343,20 +436,33 @@ pub fn validate(
     seed: u64,
     threads: usize,
 ) -> (Vec<Vec<f64>>, f64) {
-    validate_stage(m, Stage::EndToEnd, data, frames, k, seed, threads)
+    validate_stage(m, Stage::EndToEnd, &m.attention, data, frames, k, seed, threads)
 }
 
 /// Validation as a stage sees it: the warm-up's single-patch objective over the top `k`
-/// cells, or (end to end) priority sampling of `k` cells as the engine does it.
+/// cells, the attention stage's objective with the `entry` attention's top `k` cells (and
+/// the sampled model's probabilities), or (end to end) priority sampling of `k` cells as
+/// the engine does it.
+#[allow(clippy::too_many_arguments)]
 fn validate_stage(
     m: &Sampled,
     stage: Stage,
+    entry: &Net,
     data: &Dataset,
     frames: &[usize],
     k: usize,
     seed: u64,
     threads: usize,
 ) -> (Vec<Vec<f64>>, f64) {
+    if stage == Stage::Attention {
+        let (probs, _) = validate_stage(m, Stage::EndToEnd, entry, data, frames, VAL_PATCHES, seed, threads);
+        let mut workers: Vec<Worker> = (0..threads.max(1)).map(|_| Worker::new(m)).collect();
+        let plain = View::plain(&data.norm);
+        let losses = parallel(frames, &mut workers, |w, &i| {
+            m.attention_step(entry, data, i, &plain, k, seed ^ i as u64, None, w)
+        });
+        return (probs, losses.iter().flatten().sum::<f64>() / frames.len().max(1) as f64);
+    }
     let mut workers: Vec<Worker> = (0..threads.max(1)).map(|_| Worker::new(m)).collect();
     let plain = View::plain(&data.norm);
     let out = parallel(frames, &mut workers, |w, &i| {
@@ -422,11 +528,17 @@ pub fn macro_f1(probs: &[Vec<f64>], data: &Dataset, frames: &[usize]) -> f64 {
     crate::eval::metrics::f1(&truth, &pred).macro_f1
 }
 
+/// The thumbnail-only network's name in the training log.
+pub const BASELINE: &str = "baseline";
+
 /// What a stage trains.
 #[derive(Clone, Copy, PartialEq, Eq)]
 pub enum Stage {
     /// Feature network and head on single patches, attention held (see `instance_step`).
     Warmup,
+    /// The attention network alone, taught by the warmed-up patch classifier (see
+    /// `attention_step`).
+    Attention,
     /// All three networks.
     EndToEnd,
 }
@@ -435,6 +547,7 @@ impl Stage {
     fn name(self) -> &'static str {
         match self {
             Stage::Warmup => "warm-up",
+            Stage::Attention => "attention",
             Stage::EndToEnd => "sampled",
         }
     }
@@ -492,6 +605,8 @@ impl<T: Clone> Keeper<T> {
 /// The optimiser state and worker buffers of one stage: one [`Stepper::step`] per batch.
 pub struct Stepper {
     stage: Stage,
+    /// The attention the stage started from (the attention stage examines its top cells).
+    entry: Net,
     opt: [AdamW; 3],
     workers: Vec<Worker>,
 }
@@ -500,6 +615,7 @@ impl Stepper {
     pub fn new(m: &Sampled, stage: Stage, threads: usize) -> Self {
         Self {
             stage,
+            entry: m.attention.clone(),
             opt: [AdamW::new(&m.attention, 1e-4), AdamW::new(&m.features, 1e-4), AdamW::new(&m.head, 1e-4)],
             workers: (0..threads.max(1)).map(|_| Worker::new(m)).collect(),
         }
@@ -516,42 +632,54 @@ impl Stepper {
         lr: f32,
         rng: &mut ChaCha8Rng,
     ) -> f64 {
-        let end_to_end = self.stage == Stage::EndToEnd;
+        let stage = self.stage;
         let jobs: Vec<(usize, View, u64)> =
             chunk.iter().map(|&i| (i, View::draw(&data.norm, &o.augment, rng), rng.random())).collect();
-        let scale = (chunk.len() * data.samples[0].target.len()) as f32;
-        let model = &*m;
+        let classes = data.samples[0].target.len();
+        let scale = (chunk.len() * classes) as f32;
+        let (model, entry) = (&*m, &self.entry);
         self.workers.iter_mut().for_each(Worker::zero);
-        let done = parallel(&jobs, &mut self.workers, |w, (i, view, s)| {
-            if !end_to_end {
-                return model.instance_step(data, *i, view, o.top, Some(scale), w).1;
+        // Each job gives its frame's loss summed over classes.
+        let done = parallel(&jobs, &mut self.workers, |w, (i, view, s)| match stage {
+            Stage::Warmup => model.instance_step(data, *i, view, o.warmup_top, Some(scale), w).1 * scale as f64,
+            Stage::Attention => {
+                let frames = Some(chunk.len() as f32);
+                model.attention_step(entry, data, *i, view, o.warmup_top, *s, frames, w) * classes as f64
             }
-            let mut r = ChaCha8Rng::seed_from_u64(*s);
-            let pass = model.frame_forward(data, *i, view, |a| select(a, o.top, o.tail, &mut r), w);
-            let mut dz = vec![0f32; pass.logits.len()];
-            let loss = bce(&pass.logits, &data.samples[*i].target, scale, &mut dz);
-            model.frame_backward(&pass, &dz, true, o.entropy / chunk.len() as f64, w);
-            loss
+            Stage::EndToEnd => {
+                let mut r = ChaCha8Rng::seed_from_u64(*s);
+                let pass = model.frame_forward(data, *i, view, |a| select(a, o.top, o.tail, &mut r), w);
+                let mut dz = vec![0f32; pass.logits.len()];
+                let loss = bce(&pass.logits, &data.samples[*i].target, scale, &mut dz);
+                model.frame_backward(&pass, &dz, true, o.entropy / chunk.len() as f64, w);
+                loss * scale as f64
+            }
         });
         let (mut ga, mut gf, mut gh) = (m.attention.grads(), m.features.grads(), m.head.grads());
-        let mut total = 0.0;
-        for (w, losses) in self.workers.iter().zip(&done) {
+        for w in &self.workers {
             ga.add(&w.ga);
             gf.add(&w.gf);
             gh.add(&w.gh);
-            total += losses.iter().sum::<f64>() * scale as f64;
         }
-        let tuned = if end_to_end {
-            clip(&mut [&mut ga, &mut gf, &mut gh]);
-            self.opt[0].step(&mut m.attention, &ga, lr * o.attention_rate as f32);
-            lr * o.tune_rate as f32
-        } else {
-            clip(&mut [&mut gf, &mut gh]);
-            lr
-        };
-        self.opt[1].step(&mut m.features, &gf, tuned);
-        self.opt[2].step(&mut m.head, &gh, tuned);
-        total
+        match stage {
+            Stage::Warmup => {
+                clip(&mut [&mut gf, &mut gh]);
+                self.opt[1].step(&mut m.features, &gf, lr);
+                self.opt[2].step(&mut m.head, &gh, lr);
+            }
+            Stage::Attention => {
+                clip(&mut [&mut ga]);
+                self.opt[0].step(&mut m.attention, &ga, lr);
+            }
+            Stage::EndToEnd => {
+                clip(&mut [&mut ga, &mut gf, &mut gh]);
+                self.opt[0].step(&mut m.attention, &ga, lr * o.attention_rate as f32);
+                let tuned = lr * o.tune_rate as f32;
+                self.opt[1].step(&mut m.features, &gf, tuned);
+                self.opt[2].step(&mut m.head, &gh, tuned);
+            }
+        }
+        done.iter().flatten().sum()
     }
 }
 
@@ -569,13 +697,17 @@ pub fn fit_sampled(
     log: &mut Vec<EpochLog>,
     bars: &MultiProgress,
 ) {
-    let epochs = if stage == Stage::Warmup { o.warmup } else { o.epochs };
+    let (epochs, k) = match stage {
+        Stage::Warmup => (o.warmup, o.warmup_top),
+        Stage::Attention => (o.attention_epochs, o.warmup_top),
+        Stage::EndToEnd => (o.epochs, o.val_patches),
+    };
     if epochs == 0 {
         return;
     }
     let seed = rng.random::<u64>();
-    let k = if stage == Stage::Warmup { o.top } else { o.val_patches };
-    let (_, entry_loss) = validate_stage(m, stage, data, val, k, seed, o.threads);
+    let entry = m.attention.clone();
+    let (_, entry_loss) = validate_stage(m, stage, &entry, data, val, k, seed, o.threads);
     log::info!("{}: validation loss {entry_loss:.4} at the start", stage.name());
     let mut keeper = Keeper::new(m, entry_loss);
     let mut stepper = Stepper::new(m, stage, o.threads);
@@ -593,7 +725,7 @@ pub fn fit_sampled(
             b.set_message(format!("loss {:.4}", total / (b.position() as f64 * o.batch as f64 * classes)));
         }
         b.finish_and_clear();
-        let (probs, val_loss) = validate_stage(m, stage, data, val, k, seed, o.threads);
+        let (probs, val_loss) = validate_stage(m, stage, &entry, data, val, k, seed, o.threads);
         let entry = EpochLog {
             model: stage.name(),
             epoch,
@@ -671,7 +803,7 @@ pub fn fit_baseline(
         b.finish_and_clear();
         let (probs, val_loss) = validate_baseline(net, data, val, o.threads);
         let entry = EpochLog {
-            model: "baseline",
+            model: BASELINE,
             epoch,
             train_loss: total / (order.len() * data.samples[0].target.len()) as f64,
             val_loss,

@@ -1,6 +1,7 @@
 //! `saccade train`: trains a bundle on the CPU from frames with frame-level labels, and
 //! writes it in the bundle format the engine loads.
 
+pub mod bench;
 pub mod data;
 pub mod fit;
 pub mod model;
@@ -73,11 +74,11 @@ pub struct Trained {
 }
 
 /// Inputs scaled so a mid-grey sheet sits near 0.
-const NORMALIZATION: Normalization = Normalization { mean: [0.5; 3], std: [0.25; 3] };
+pub(crate) const NORMALIZATION: Normalization = Normalization { mean: [0.5; 3], std: [0.25; 3] };
 /// Initial attention: gain on the local contrast (normalised units), and where its slope
 /// bends down (about 20 grey levels).
-const ATTENTION_GAIN: f32 = 40.0;
-const ATTENTION_CAP: f32 = 0.3;
+pub(crate) const ATTENTION_GAIN: f32 = 40.0;
+pub(crate) const ATTENTION_CAP: f32 = 0.3;
 
 pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     let t0 = Instant::now();
@@ -140,6 +141,7 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     let check_seed = rng.random::<u64>();
     let (_, loss_before) = validate(&m, &data, val, o.fit.val_patches, check_seed, o.fit.threads);
     fit_sampled(&mut m, Stage::Warmup, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
+    fit_sampled(&mut m, Stage::Attention, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
     fit_sampled(&mut m, Stage::EndToEnd, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
     let (probs, loss_after) = validate(&m, &data, val, o.fit.val_patches, check_seed, o.fit.threads);
     log::info!("sampled model: validation loss {loss_before:.4} before training, {loss_after:.4} after");
@@ -251,7 +253,8 @@ fn manifest(o: &TrainOptions, classes: &[String], thresholds: &[f64], descriptio
 }
 
 /// Writes the ONNX files, `bundle.toml`, `training.jsonl` (one line per epoch) and
-/// `held-out.json` (thresholds and F1 on the held-out frames).
+/// `held-out.json` (thresholds and F1 on the held-out frames) and `training.png` (the
+/// curves of `training.jsonl`).
 pub fn write_bundle(
     dir: &Path,
     s: &Sampled,
@@ -275,5 +278,34 @@ pub fn write_bundle(
     write(MANIFEST, toml::to_string_pretty(m)?.into_bytes())?;
     let lines: Vec<String> = log.iter().map(serde_json::to_string).collect::<Result<_, _>>()?;
     write("training.jsonl", (lines.join("\n") + "\n").into_bytes())?;
-    write("held-out.json", (serde_json::to_string_pretty(held_out)? + "\n").into_bytes())
+    write("held-out.json", (serde_json::to_string_pretty(held_out)? + "\n").into_bytes())?;
+    write("training.png", crate::eval::plot::png_bytes(&curves(log)))
+}
+
+/// The training curves: validation losses (top) and macro F1 at probability 0.5 (bottom)
+/// against epochs, the sampled model's stages one after another and the thumbnail-only
+/// network from epoch 1.
+fn curves(log: &[EpochLog]) -> image::RgbImage {
+    use crate::eval::plot::{render_curves, CurvePanel};
+    let mut models: Vec<&'static str> = Vec::new();
+    for e in log {
+        if !models.contains(&e.model) {
+            models.push(e.model);
+        }
+    }
+    let (mut losses, mut scores) = (Vec::new(), Vec::new());
+    let mut offset = 0usize;
+    for model in models {
+        let epochs: Vec<&EpochLog> = log.iter().filter(|e| e.model == model).collect();
+        let start = if model == fit::BASELINE { 0 } else { offset };
+        let at = |f: fn(&EpochLog) -> f64| epochs.iter().map(|e| ((start + e.epoch) as f64, f(e))).collect();
+        losses.push((model.to_string(), at(|e| e.val_loss)));
+        scores.push((model.to_string(), at(|e| e.val_macro_f1)));
+        if model != fit::BASELINE {
+            offset += epochs.len();
+        }
+    }
+    let top = CurvePanel { title: "validation loss (each stage its own objective)".into(), series: losses };
+    let bottom = CurvePanel { title: "validation macro F1 at 0.5".into(), series: scores };
+    render_curves(&top, &bottom, "epoch")
 }

@@ -17,7 +17,12 @@ import torch
 import torch.nn as nn
 import torch.nn.functional as F
 
-EPS = 1e-3  # the head's offset inside ln(Psi + eps), as src/train/model.rs
+# Constants as in src/train/model.rs: the offset inside the log of the pooled features,
+# the evidence sharpness and clamp, and the head's offset inside ln(Psi + eps).
+FEATURE_EPS = 1e-3
+SHARPNESS = 4.0
+LIMIT = 40.0
+HEAD_EPS = 1e-12
 
 
 class Attention(nn.Module):
@@ -35,28 +40,31 @@ class Attention(nn.Module):
 
 
 class Features(nn.Module):
-    def __init__(self):
+    def __init__(self, classes=4):
         super().__init__()
         self.c1 = nn.Conv2d(3, 16, 3, stride=2, padding=1)
         self.c2 = nn.Conv2d(16, 16, 3, padding=1)
         self.c3 = nn.Conv2d(16, 32, 3, padding=1)
         self.c4 = nn.Conv2d(32, 32, 3, padding=1)
+        self.d1 = nn.Linear(32, 32)
+        self.d2 = nn.Linear(32, classes)
 
     def forward(self, x):
         h = F.relu(self.c1(x))
         h = F.max_pool2d(F.relu(self.c2(h)), 2)
         h = F.max_pool2d(F.relu(self.c3(h)), 2)
-        return F.relu(self.c4(h)).amax(dim=(2, 3))
+        h = F.relu(self.c4(h)).amax(dim=(2, 3))
+        score = self.d2(F.relu(self.d1(torch.log(h + FEATURE_EPS))))
+        return torch.exp(torch.clamp(SHARPNESS * score, -LIMIT, LIMIT))
 
 
 class Head(nn.Module):
     def __init__(self, classes=4):
         super().__init__()
-        self.d1 = nn.Linear(32, 32)
-        self.d2 = nn.Linear(32, classes)
+        self.d = nn.Linear(classes, classes)
 
     def forward(self, psi):
-        return self.d2(F.relu(self.d1(torch.log(F.relu(psi) + EPS))))
+        return self.d(torch.log(F.relu(psi) + HEAD_EPS))
 
 
 def main():
