@@ -1,6 +1,6 @@
 //! The trained demo bundle that ships with the program finds the defects placed in
 //! generated frames it never saw in training (seeds from 900 000 on; training used seeds
-//! below 10 000, see the README's "The demo bundle").
+//! 1–600, see the README's "The demo bundle").
 
 use std::sync::Arc;
 
@@ -21,7 +21,7 @@ fn the_shipped_bundle_finds_the_placed_defects() {
     let settings = Settings { budget_ms: 60_000.0, ..Settings::default() };
     let mut engine = Engine::new(bundle.clone(), settings).unwrap();
     let (mut truth, mut said, mut thumb_said) = (Vec::new(), Vec::new(), Vec::new());
-    for n in 0..40u64 {
+    for n in 0..60u64 {
         let seed = 900_000 + n;
         let f = scene::generate(2448, 2048, seed);
         let placed = f.classes();
@@ -34,8 +34,8 @@ fn the_shipped_bundle_finds_the_placed_defects() {
     let thumb = f1(&truth, &thumb_said);
     let f1 = f1(&truth, &said);
     eprintln!("per-class F1 {:?}, macro {:.3}; thumbnail-only macro {:.3}", f1.per_class, f1.macro_f1, thumb.macro_f1);
-    // The bar is what this bundle reaches (README, "The demo bundle"): well above chance,
-    // and above the thumbnail-only network on the same frames.
-    assert!(f1.macro_f1 >= 0.5, "macro F1 {:.3} over 40 frames (per class {:?})", f1.macro_f1, f1.per_class);
-    assert!(f1.macro_f1 > thumb.macro_f1 + 0.1, "sampled {:.3} vs thumbnail-only {:.3}", f1.macro_f1, thumb.macro_f1);
+    // The bar the product needs (README, "Reference results"): most small defects found,
+    // and far above the thumbnail-only network on the same frames.
+    assert!(f1.macro_f1 >= 0.85, "macro F1 {:.3} over 60 frames (per class {:?})", f1.macro_f1, f1.per_class);
+    assert!(f1.macro_f1 > thumb.macro_f1 + 0.2, "sampled {:.3} vs thumbnail-only {:.3}", f1.macro_f1, thumb.macro_f1);
 }

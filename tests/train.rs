@@ -83,6 +83,7 @@ fn options(labels: std::path::PathBuf, out: std::path::PathBuf) -> TrainOptions 
         baseline: true,
         baseline_epochs: 2,
         max_pixels: 1 << 24,
+        start: None,
     }
 }
 
@@ -151,6 +152,26 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
     assert_eq!(lines.lines().count(), t.log.len());
     let held: Value = serde_json::from_str(&std::fs::read_to_string(out.join("held-out.json")).unwrap()).unwrap();
     assert_eq!(held["frames"], 4);
+    // The curves decode as the documented 960×540 PNG (image crate's decoder).
+    let png = image::open(out.join("training.png")).unwrap();
+    assert_eq!((png.width(), png.height()), (960, 540));
+
+    // A run that starts from the last stage's file, with nothing left to train but one
+    // end-to-end epoch, starts where this one ended: same split and validation draws, so
+    // the same validation loss to the last bit.
+    let stage = out.join("stages").join("sampled.json");
+    let again = TrainOptions {
+        out: dir.path().join("again"),
+        start: Some(stage.clone()),
+        baseline: false,
+        fit: FitOptions { warmup: 0, attention_epochs: 0, epochs: 1, ..o.fit.clone() },
+        ..o.clone()
+    };
+    assert_eq!(train(&again).unwrap().loss_before, t.loss_after);
+    // A stage file of another shape is refused with the network and layer named.
+    let wide = TrainOptions { arch: saccade::train::model::Arch::preset("wide").unwrap(), ..again };
+    let err = format!("{:#}", train(&wide).err().expect("a wider network cannot take these weights"));
+    assert!(err.contains("sampled.json") && err.contains("features network: layer"), "{err}");
 }
 
 /// Early stopping compares every epoch with the weights a stage started from: a stage

@@ -47,7 +47,7 @@ pub struct TrainArgs {
     #[arg(long, default_value_t = 24)]
     pub top: usize,
     /// Cells of highest initial attention examined per frame and step in the warm-up.
-    #[arg(long, default_value_t = 96)]
+    #[arg(long, default_value_t = 24)]
     pub warmup_top: usize,
     /// Further cells drawn per frame and step from the remaining attention.
     #[arg(long, default_value_t = 8)]
@@ -104,6 +104,11 @@ pub struct TrainArgs {
     /// Brightness jitter: offset in grey levels drawn from [-O, O] per frame and step.
     #[arg(long, default_value_t = 15.0)]
     pub offset_jitter: f32,
+    /// Start from the weights of a stage file an earlier run wrote (OUT/stages/NAME.json;
+    /// same --arch and classes) instead of the initial ones; with --warmup-epochs 0, training
+    /// continues where that stage ended.
+    #[arg(long)]
+    pub start_from: Option<PathBuf>,
     /// Worker threads [default: the CPU cores available].
     #[arg(long)]
     pub threads: Option<usize>,
@@ -155,6 +160,7 @@ pub fn run(a: TrainArgs) -> anyhow::Result<ExitCode> {
         baseline: !a.no_baseline,
         baseline_epochs: a.baseline_epochs,
         max_pixels: DEFAULT_MAX_PIXELS,
+        start: a.start_from,
     };
     let t = train(&o)?;
     // The written bundle must load as the daemon would load it.

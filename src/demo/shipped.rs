@@ -4,13 +4,15 @@
 
 use std::path::Path;
 
-const FILES: [(&str, &[u8]); 6] = [
+const FILES: [(&str, &[u8]); 8] = [
     ("bundle.toml", include_bytes!("bundle/bundle.toml")),
     ("attention.onnx", include_bytes!("bundle/attention.onnx")),
     ("features.onnx", include_bytes!("bundle/features.onnx")),
     ("head.onnx", include_bytes!("bundle/head.onnx")),
     ("baseline.onnx", include_bytes!("bundle/baseline.onnx")),
     ("training.jsonl", include_bytes!("bundle/training.jsonl")),
+    ("training.png", include_bytes!("bundle/training.png")),
+    ("held-out.json", include_bytes!("bundle/held-out.json")),
 ];
 
 /// Where the bundle lives in the source tree, for tests and tools that read it in place.

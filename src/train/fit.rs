@@ -51,9 +51,9 @@ pub struct FitOptions {
     pub batch: usize,
     /// Cells of highest attention summed exactly per frame and step, end to end.
     pub top: usize,
-    /// Cells of highest initial attention per frame and step in the warm-up: more than
-    /// `top`, so that faint or thin marks the initial attention ranks low are still among
-    /// the patches a labelled frame trains on.
+    /// Cells of highest initial attention per frame and step in the warm-up (more cells
+    /// reach marks the initial attention ranks low, but make more look-alikes candidates
+    /// for a frame's maximum).
     pub warmup_top: usize,
     /// Draws from the remaining attention per frame and step.
     pub tail: usize,
@@ -292,16 +292,17 @@ impl Sampled {
         (frame, loss)
     }
 
-    /// The attention stage's objective on one frame: the attention network learns, cell by
-    /// cell, what the warm-up's feature network and head see in the patch there. The
-    /// examined cells are the `entry` attention's top `top` (the cells the warm-up trained
-    /// on), the current attention's top [`ATTENTION_TOP`] (so that what it has come to
-    /// rank high is checked) and [`EXPLORE`] cells drawn uniformly (background). Each
-    /// cell's target is the head's largest probability over the classes the frame carries
-    /// (0 on a frame without classes), and its score `s` is fitted to it by binary cross
-    /// entropy on `σ(s)`, so a mark's cells rise and look-alikes and background sink.
-    /// Returns the mean loss over the cells; with `learn` (frames in the step) the
-    /// gradients go to the attention network.
+    /// The attention stage's objective on one frame: the attention network learns where
+    /// the warmed-up feature network and head find the strongest evidence. The examined
+    /// cells are the `entry` attention's top `top` (the cells the warm-up trained on), the
+    /// current attention's top [`ATTENTION_TOP`] (so that what it has come to rank high is
+    /// checked) and [`EXPLORE`] cells drawn uniformly (plain ground). Over them the target
+    /// is `q ∝ exp(SHARPNESS · m)`, with `m` a cell's largest class score: the share of
+    /// `Psi` each cell carries were the attention uniform. Fitting the attention's softmax
+    /// over the examined cells to `q` (cross-entropy) puts its mass where a frame's answer
+    /// comes from, so that `Psi = Σ a f` is close to the strongest patch's own evidence,
+    /// on clean frames as on marked ones. Returns the cross-entropy; with `learn` (frames
+    /// in the step) the gradients go to the attention network.
     #[allow(clippy::too_many_arguments)]
     fn attention_step(
         &self,
@@ -338,25 +339,18 @@ impl Sampled {
         let n = cells.len();
         let f = self.features.forward(Act::new(n, p, p, 3, patches), &mut w.ft).data.clone();
         let z = self.head.forward(Act::new(n, 1, 1, f.len() / n, f), &mut w.ht).data.clone();
-        let target = &data.samples[i].target;
-        let classes = target.len();
-        let (scores, teacher): (Vec<f32>, Vec<f32>) = cells
-            .iter()
-            .enumerate()
-            .map(|(j, &c)| {
-                let t = (0..classes)
-                    .filter(|&k| target[k] > 0.5)
-                    .map(|k| sigmoid(z[j * classes + k]))
-                    .fold(0.0f32, f32::max);
-                (s[c], t)
-            })
-            .unzip();
-        let mut d = vec![0f32; n];
-        let loss = bce(&scores, &teacher, n as f32, &mut d);
+        let classes = z.len() / n;
+        let evidence: Vec<f32> = z
+            .chunks_exact(classes)
+            .map(|row| super::model::SHARPNESS * row.iter().fold(f32::NEG_INFINITY, |m, &v| m.max(v)))
+            .collect();
+        let q = softmax(&evidence);
+        let att = softmax(&cells.iter().map(|&c| s[c]).collect::<Vec<f32>>());
+        let loss = -q.iter().zip(&att).map(|(&q, &p)| q * p.max(1e-300).ln()).sum::<f64>();
         if let Some(frames) = learn {
             let mut ds = vec![0f32; s.len()];
-            for (&c, g) in cells.iter().zip(&d) {
-                ds[c] = g / frames;
+            for ((&c, &q), &p) in cells.iter().zip(&q).zip(&att) {
+                ds[c] = ((p - q) / frames as f64) as f32;
             }
             self.attention.backward(&mut w.at, &ds, &mut w.ga, false);
         }
@@ -520,6 +514,20 @@ pub fn validate_baseline(b: &Net, data: &Dataset, frames: &[usize], threads: usi
     (results.into_iter().map(|r| r.0).collect(), loss)
 }
 
+/// Macro F1 with each class at its best threshold on these frames (the rule the bundle's
+/// thresholds follow).
+pub fn thresholded_f1(probs: &[Vec<f64>], data: &Dataset, frames: &[usize]) -> f64 {
+    let classes = data.samples[0].target.len();
+    let total: f64 = (0..classes)
+        .map(|c| {
+            let scores: Vec<f64> = probs.iter().map(|p| p[c]).collect();
+            let truth: Vec<bool> = frames.iter().map(|&i| data.samples[i].target[c] > 0.5).collect();
+            crate::eval::metrics::best_f1_threshold(&scores, &truth).map_or(0.0, |t| t.f1)
+        })
+        .sum();
+    total / classes as f64
+}
+
 /// Macro F1 at probability 0.5.
 pub fn macro_f1(probs: &[Vec<f64>], data: &Dataset, frames: &[usize]) -> f64 {
     let pred: Vec<Vec<bool>> = probs.iter().map(|p| p.iter().map(|&v| v >= 0.5).collect()).collect();
@@ -544,7 +552,8 @@ pub enum Stage {
 }
 
 impl Stage {
-    fn name(self) -> &'static str {
+    /// The stage's name in the log, `training.jsonl` and its stage file.
+    pub fn name(self) -> &'static str {
         match self {
             Stage::Warmup => "warm-up",
             Stage::Attention => "attention",
@@ -748,6 +757,23 @@ pub fn fit_sampled(
         }
     }
     log::info!("{}: keeping the weights with validation loss {:.4}", stage.name(), keeper.loss);
+    if stage == Stage::Attention {
+        // Its own objective always improves; what counts is the sampled model's answer, as
+        // the bundle will use it: each class at its best threshold on the held-out frames.
+        // (The loss would also count a shift of every logit that the thresholds absorb.)
+        let mut start = keeper.best.clone();
+        start.attention = entry;
+        let (p0, l0) = validate(&start, data, val, o.val_patches, seed, o.threads);
+        let (p1, l1) = validate(&keeper.best, data, val, o.val_patches, seed, o.threads);
+        let (f0, f1) = (thresholded_f1(&p0, data, val), thresholded_f1(&p1, data, val));
+        log::info!(
+            "attention: sampled model with the entry attention: loss {l0:.4}, macro F1 {f0:.3} at the best thresholds; with the new: {l1:.4}, {f1:.3}"
+        );
+        if f1 <= f0 {
+            log::info!("attention: keeping the entry attention");
+            keeper.best = start;
+        }
+    }
     *m = keeper.best;
 }
 

@@ -43,6 +43,9 @@ pub struct TrainOptions {
     pub baseline: bool,
     pub baseline_epochs: usize,
     pub max_pixels: u64,
+    /// A stage file of an earlier run (same `arch` and classes) to start from instead of the
+    /// initial weights; with no warm-up epochs, training continues where that stage ended.
+    pub start: Option<PathBuf>,
 }
 
 /// What the held-out frames say about the trained bundle.
@@ -138,11 +141,16 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
         features: model::features(&mut init, &o.arch, classes.len()),
         head: model::head(&mut init, classes.len()),
     };
+    if let Some(path) = &o.start {
+        StageFile::read(path)?.apply(&mut m, path)?;
+        log::info!("starting from the weights in {}", path.display());
+    }
     let check_seed = rng.random::<u64>();
     let (_, loss_before) = validate(&m, &data, val, o.fit.val_patches, check_seed, o.fit.threads);
-    fit_sampled(&mut m, Stage::Warmup, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
-    fit_sampled(&mut m, Stage::Attention, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
-    fit_sampled(&mut m, Stage::EndToEnd, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
+    for stage in [Stage::Warmup, Stage::Attention, Stage::EndToEnd] {
+        fit_sampled(&mut m, stage, &data, train, val, &o.fit, &mut rng, &mut log, &bars);
+        StageFile::of(&m).write(&o.out.join(STAGES).join(format!("{}.json", stage.name())))?;
+    }
     let (probs, loss_after) = validate(&m, &data, val, o.fit.val_patches, check_seed, o.fit.threads);
     log::info!("sampled model: validation loss {loss_before:.4} before training, {loss_after:.4} after");
 
@@ -207,6 +215,49 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     let manifest = manifest(o, &classes, &thresholds, &description);
     write_bundle(&o.out, &m, baseline.as_ref(), &manifest, &log, &held_out)?;
     Ok(Trained { sampled: m, baseline, log, loss_before, loss_after, held_out, manifest, seconds })
+}
+
+/// Folder of the bundle where each stage's weights are written.
+pub const STAGES: &str = "stages";
+
+/// The three networks' weights after a stage (`--start-from` reads it back).
+#[derive(Serialize, serde::Deserialize)]
+struct StageFile {
+    attention: Vec<(Vec<f32>, Vec<f32>)>,
+    features: Vec<(Vec<f32>, Vec<f32>)>,
+    head: Vec<(Vec<f32>, Vec<f32>)>,
+}
+
+impl StageFile {
+    fn of(m: &Sampled) -> Self {
+        Self { attention: m.attention.weights(), features: m.features.weights(), head: m.head.weights() }
+    }
+
+    fn write(&self, path: &Path) -> anyhow::Result<()> {
+        use anyhow::Context;
+        let dir = path.parent().expect("a file in the bundle folder");
+        std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+        std::fs::write(path, serde_json::to_vec(self)?).with_context(|| format!("writing {}", path.display()))
+    }
+
+    fn read(path: &Path) -> anyhow::Result<Self> {
+        use anyhow::Context;
+        let bytes = std::fs::read(path).with_context(|| format!("reading {}", path.display()))?;
+        serde_json::from_slice(&bytes).with_context(|| format!("{}: not a stage file of saccade train", path.display()))
+    }
+
+    fn apply(&self, m: &mut Sampled, path: &Path) -> anyhow::Result<()> {
+        let nets = [("attention", &mut m.attention, &self.attention), ("features", &mut m.features, &self.features)];
+        for (name, net, w) in nets.into_iter().chain([("head", &mut m.head, &self.head)]) {
+            net.set_weights(w).map_err(|e| {
+                anyhow::anyhow!(
+                    "{}: {name} network: {e} (was it written with other --arch or classes?)",
+                    path.display()
+                )
+            })?;
+        }
+        Ok(())
+    }
 }
 
 /// Per class, [`best_f1_threshold`] on the held-out probabilities; 0.5 for a class that

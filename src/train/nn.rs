@@ -346,6 +346,34 @@ impl Net {
         self.layers.iter_mut().filter_map(|l| if let Layer::Conv(c) = l { Some(c) } else { None })
     }
 
+    /// Every convolution's weights and bias, in order (what a stage file stores).
+    pub fn weights(&self) -> Vec<(Vec<f32>, Vec<f32>)> {
+        self.convs().map(|c| (c.w.clone(), c.b.clone())).collect()
+    }
+
+    /// Sets every convolution's weights and bias from [`Net::weights`] of a network of the
+    /// same shape; on a mismatch, says which layer and leaves the network as it was.
+    pub fn set_weights(&mut self, weights: &[(Vec<f32>, Vec<f32>)]) -> Result<(), String> {
+        let convs: Vec<(usize, usize)> = self.convs().map(|c| (c.w.len(), c.b.len())).collect();
+        if convs.len() != weights.len() {
+            return Err(format!("{} layers stored, the network has {}", weights.len(), convs.len()));
+        }
+        for (j, (&(w, b), (sw, sb))) in convs.iter().zip(weights).enumerate() {
+            if (w, b) != (sw.len(), sb.len()) {
+                return Err(format!(
+                    "layer {j}: {} weights and {} biases stored, the network has {w} and {b}",
+                    sw.len(),
+                    sb.len()
+                ));
+            }
+        }
+        for (c, (w, b)) in self.convs_mut().zip(weights) {
+            c.w.clone_from(w);
+            c.b.clone_from(b);
+        }
+        Ok(())
+    }
+
     /// Parameter tensors: each convolution's weights, then its bias.
     pub fn params(&self) -> Vec<&[f32]> {
         self.convs().flat_map(|c| [c.w.as_slice(), c.b.as_slice()]).collect()

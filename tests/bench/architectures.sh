@@ -13,9 +13,9 @@ work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT
 "$bin" scene --out "$work/tiny" --count 4 --seed 7 --size 512x384 --format png 2>/dev/null
 "$bin" scene --out "$work/frame" --count 1 --seed 8 --size 2448x2048 2>/dev/null
-for arch in compact wide coarse; do
+for arch in standard small wide; do
   "$bin" train --labels "$work/tiny/labels.jsonl" --out "$work/$arch" --arch "$arch" \
-    --epochs 1 --batch 2 --patches 2 --no-baseline 2>/dev/null
+    --warmup-epochs 0 --attention-epochs 0 --epochs 1 --batch 2 --top 2 --tail 1 --val-patches 2 --no-baseline 2>/dev/null
   "$bin" bench --bundle "$work/$arch" --frame "$work/frame/sheet-000000.jpg" --repeats "$repeats" --json >"$work/$arch.json"
   "$py" tests/reference/bench_compare.py "$work/frame/sheet-000000.jpg" "$work/$arch" "$repeats" >"$work/$arch.ort"
   "$py" - "$arch" "$work/$arch.json" "$work/$arch.ort" <<'PY'
