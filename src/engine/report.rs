@@ -71,6 +71,9 @@ pub struct Report {
     pub cells: usize,
     /// Attention mass of the examined cells, `Σ_{i≤k} a_i`.
     pub attention_mass: f64,
+    /// The examined patches in the order examined (left out of JSON when empty: the
+    /// daemon's log lists them only on request).
+    #[serde(skip_serializing_if = "Vec::is_empty")]
     pub patches: Vec<PatchUse>,
     pub times_ms: StageTimes,
     pub budget_ms: f64,
