@@ -6,6 +6,7 @@ use rand_distr::StandardNormal;
 use serde::Serialize;
 
 use super::estimator::Weights;
+use super::report::{six, six_pair};
 use crate::bundle::Activation;
 
 /// What a class's interval says relative to its two thresholds.
@@ -32,6 +33,7 @@ pub struct Spot {
     /// Index into the report's examined patches.
     #[serde(skip)]
     pub patch: usize,
+    #[serde(serialize_with = "six")]
     pub probability: f64,
 }
 
@@ -43,14 +45,19 @@ pub type Decision = (f64, f64);
 pub struct ClassResult {
     pub name: String,
     /// Probability at the point estimate `Psi_hat`.
+    #[serde(serialize_with = "six")]
     pub probability: f64,
     /// Standard deviation of the probability over the Gaussian samples of `Psi`.
+    #[serde(serialize_with = "six")]
     pub spread: f64,
     /// Central interval of the probability at the configured level.
+    #[serde(serialize_with = "six_pair")]
     pub interval: [f64; 2],
     /// Clear when the whole interval is below this.
+    #[serde(serialize_with = "six")]
     pub clear_below: f64,
     /// Detected when the whole interval is above this.
+    #[serde(serialize_with = "six")]
     pub detected_above: f64,
     pub outcome: Outcome,
     /// For a class that is not clear: the examined patches that carry it, strongest first.

@@ -255,21 +255,49 @@ fn overview(report: &Report, frame: &RgbImage) -> RgbImage {
         })
         .collect();
     draw_text(&mut img, 8, 8 + (GLYPH_HEIGHT * TEXT) as i64 + 4, &fit(&summary.join("  "), w), TEXT, INK);
+    // One box per patch, labelled with every class it carries (several classes often
+    // share their strongest patch); labels move down until they overlap no earlier one.
     let f = f as i64;
+    let mut marks: Vec<(i64, i64, u32, Outcome, Vec<String>)> = Vec::new();
     for c in &findings {
-        let col = colour(c.outcome);
-        for (n, s) in c.patches.iter().enumerate() {
-            // The patch in overview pixels, boxed with a margin so the mark does not hide it.
-            let side = (s.size as i64 / f).max(1);
-            let margin = 6;
-            let (x0, y0) = (s.x.div_euclid(f) - margin, s.y.div_euclid(f) + HEADER as i64 - margin);
-            frame_box(&mut img, x0, y0, side + 2 * margin, 3, col);
-            let text = if n == 0 { format!("{} {:.2}", c.name, c.probability) } else { c.name.clone() };
-            let lh = (GLYPH_HEIGHT * TEXT) as i64 + 6;
-            let ly = if y0 - lh - 2 >= HEADER as i64 { y0 - lh - 2 } else { y0 + side + 2 * margin + 2 };
-            let fg = if c.outcome == Outcome::Detected { Rgb([255, 255, 255]) } else { INK };
-            label(&mut img, x0, ly, &text, col, fg);
+        for s in &c.patches {
+            let text = format!("{} {:.2}", c.name, c.probability);
+            match marks.iter_mut().find(|m| (m.0, m.1) == (s.x, s.y)) {
+                Some(m) => {
+                    m.4.push(text);
+                    if c.outcome == Outcome::Detected {
+                        m.3 = Outcome::Detected;
+                    }
+                }
+                None => marks.push((s.x, s.y, s.size, c.outcome, vec![text])),
+            }
         }
+    }
+    let lh = (GLYPH_HEIGHT * TEXT) as i64 + 6;
+    let mut taken: Vec<(i64, i64, i64, i64)> = Vec::new();
+    for (x, y, size, outcome, texts) in &marks {
+        let col = colour(*outcome);
+        let side = (*size as i64 / f).max(1);
+        let margin = 6;
+        let (x0, y0) = (x.div_euclid(f) - margin, y.div_euclid(f) + HEADER as i64 - margin);
+        frame_box(&mut img, x0, y0, side + 2 * margin, 3, col);
+        let text = texts.join(" · ");
+        let lw = text_width(&text, TEXT) as i64 + 8;
+        // Above the box where there is room, else below it; left edge kept in the image.
+        let lx = x0.min(w as i64 - lw).max(0);
+        let mut ly = if y0 - lh - 2 >= HEADER as i64 { y0 - lh - 2 } else { y0 + side + 2 * margin + 2 };
+        let overlaps = |ly: i64, t: &[(i64, i64, i64, i64)]| {
+            t.iter().any(|&(tx, ty, tw, th)| lx < tx + tw && tx < lx + lw && ly < ty + th && ty < ly + lh)
+        };
+        for _ in 0..8 {
+            if !overlaps(ly, &taken) {
+                break;
+            }
+            ly += lh + 2;
+        }
+        let fg = if *outcome == Outcome::Detected { Rgb([255, 255, 255]) } else { INK };
+        label(&mut img, lx, ly, &text, col, fg);
+        taken.push((lx, ly, lw, lh));
     }
     img
 }

@@ -126,7 +126,9 @@ impl Worker {
                     }
                 }
                 keep_patches(&mut report, self.log_cfg.patches);
-                let age_ms = SystemTime::now().duration_since(captured).unwrap_or_default().as_secs_f64() * 1000.0;
+                // Microseconds are plenty for an age.
+                let age_ms =
+                    (SystemTime::now().duration_since(captured).unwrap_or_default().as_secs_f64() * 1e6).round() / 1e3;
                 self.window_age.push(age_ms);
                 if look || self.log_cfg.records == RecordPolicy::All {
                     let rec = FrameRecord {
