@@ -219,3 +219,37 @@ fn findings_name_their_patches() {
         assert!(c.patches.is_empty(), "{c:?}");
     }
 }
+
+/// The log lists no examined patch by default, only the finding patches with `findings`,
+/// and all of them with `all`.
+#[test]
+fn records_list_the_patches_the_config_asks_for() {
+    use saccade::sinks::worker::keep_patches;
+    use saccade::sinks::PatchPolicy;
+    let dir = common::designed_bundle(&DesignedParams::default());
+    let bundle = Arc::new(Bundle::load(dir.path(), &Settings::default().batch_sizes()).unwrap());
+    let s = Settings { budget_ms: 60_000.0, min_patches: 32, max_patches: 32, ..Settings::default() };
+    let mut e = Engine::new(bundle, s).unwrap();
+    let mut img = image::RgbImage::from_pixel(640, 480, image::Rgb([150, 150, 150]));
+    for dy in 0..8 {
+        for dx in 0..8 {
+            img.put_pixel(300 + dx, 200 + dy, image::Rgb([10, 10, 10]));
+        }
+    }
+    let r = e.analyze(&Frame::new(0, "spot", img), 5).unwrap();
+    let named: std::collections::BTreeSet<(i64, i64)> =
+        r.classes.iter().flat_map(|c| c.patches.iter().map(|p| (p.x, p.y))).collect();
+    assert!(!named.is_empty());
+    let mut all = r.clone();
+    keep_patches(&mut all, PatchPolicy::All);
+    assert_eq!(all.patches.len(), 32);
+    let mut none = r.clone();
+    keep_patches(&mut none, PatchPolicy::None);
+    let json = serde_json::to_value(&none).unwrap();
+    assert!(json.get("patches").is_none(), "no list in the record");
+    assert!(json["classes"].as_array().unwrap().iter().any(|c| c.get("patches").is_some()), "findings keep theirs");
+    let mut findings = r;
+    keep_patches(&mut findings, PatchPolicy::Findings);
+    let kept: std::collections::BTreeSet<(i64, i64)> = findings.patches.iter().map(|p| (p.x, p.y)).collect();
+    assert_eq!(kept, named);
+}
