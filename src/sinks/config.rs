@@ -96,7 +96,7 @@ pub struct EvidenceConfig {
     pub quota_mb: f64,
     /// Files older than this are removed.
     pub max_age_hours: f64,
-    /// Full-resolution crops saved per frame (highest weight first).
+    /// Enlarged, captioned crops saved per frame, of the patches that carry findings.
     pub crops: usize,
 }
 
