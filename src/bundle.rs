@@ -4,6 +4,8 @@
 //! (the trainer, the designed demo bundle) shares one definition with the engine, which
 //! loads them (`engine::Bundle`).
 
+pub mod calibration;
+
 use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};

@@ -5,7 +5,8 @@
 //! budget and returns an [`engine::Report`], and [`sinks`] write reports out. [`config`]
 //! gathers the tables that source, engine and sinks own into one file; [`service`] runs
 //! them as a daemon. [`bundle`] is the model bundle's format, shared by the engine that
-//! loads bundles and the tools that write them.
+//! loads bundles and the tools that write them; [`bundle::calibration`] is the bundle's optional
+//! calibration file (probability maps and risk-controlled outcome thresholds).
 
 pub mod bundle;
 pub mod config;
@@ -13,6 +14,7 @@ pub mod demo;
 pub mod engine;
 pub mod eval;
 pub mod folders;
+pub mod font;
 pub mod labels;
 pub mod onnx;
 pub mod service;

@@ -22,6 +22,8 @@ enum Command {
     Bench(cli::bench::BenchArgs),
     /// Analyse labelled frames at several budgets and recommend the smallest good one.
     Sweep(cli::sweep::SweepArgs),
+    /// Fit the bundle's probability maps and outcome thresholds to labelled frames.
+    Calibrate(cli::calibrate::CalibrateArgs),
     /// Test the feature network alone at labelled mark positions (a linear probe).
     Probe(cli::probe::ProbeArgs),
     /// Write generated frames of the demo scenario and their labels.
@@ -84,6 +86,7 @@ fn main() -> ExitCode {
         Command::Demo(a) => cli::demo::run(a),
         Command::Bench(a) => cli::bench::run(a),
         Command::Sweep(a) => cli::sweep::run(a),
+        Command::Calibrate(a) => cli::calibrate::run(a),
         Command::Probe(a) => cli::probe::run(a),
         Command::Scene(a) => cli::scene::run(a),
         #[cfg(feature = "train")]

@@ -130,7 +130,10 @@ fn folder_source_end_to_end_with_bad_frames() {
     let cfg = s.config(
         &format!("kind = \"folder\"\npath = {:?}\nafter = \"move\"\nmove_to = {:?}\nstable_ms = 200\npoll_ms = 50\noverload = \"wait\"", inbox.display().to_string(), s.path("done").display().to_string()),
         "budget_ms = 50",
-        "records = \"all\"\nsync = \"always\"",
+        &format!(
+            "records = \"all\"\nsync = \"always\"\n\n[evidence]\nenabled = true\ndir = {:?}",
+            s.path("evidence").display().to_string()
+        ),
     );
     let mut child = s.spawn(&cfg, &[]);
     // Good frames arrive by rename into place, as a well-behaved producer does.
@@ -179,6 +182,31 @@ fn folder_source_end_to_end_with_bad_frames() {
     let left: Vec<_> = std::fs::read_dir(&inbox).unwrap().map(|e| e.unwrap().file_name()).collect();
     assert_eq!(left, vec![std::ffi::OsString::from("f900.jpg.part")]);
     assert_eq!(std::fs::read_dir(s.path("done")).unwrap().count(), 10);
+
+    // Compact records: no per-patch list by default; findings name their patches; the
+    // evidence files a record names exist, and decode at their documented sizes.
+    assert!(frames.iter().all(|r| r.get("patches").is_none()), "no patch list by default");
+    let with_evidence: Vec<&Value> = frames.iter().filter(|r| r.get("evidence").is_some()).collect();
+    assert!(!with_evidence.is_empty(), "the designed bundle flags the generated frames' dark spots");
+    for r in &with_evidence {
+        let ev = &r["evidence"];
+        let overview = image::open(ev["overview"].as_str().unwrap()).unwrap();
+        let (w, h) = (r["width"].as_u64().unwrap() as u32, r["height"].as_u64().unwrap() as u32);
+        assert_eq!((overview.width(), overview.height()), saccade::sinks::evidence::overview_size(w, h));
+        let spots: Vec<&Value> = r["classes"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|c| c["outcome"] != "clear")
+            .flat_map(|c| c["patches"].as_array().unwrap())
+            .collect();
+        assert_eq!(ev["crops"].as_array().unwrap().len(), spots.len().min(4), "{r}");
+        for c in ev["crops"].as_array().unwrap() {
+            let img = image::open(c.as_str().unwrap()).unwrap();
+            let size = spots[0]["size"].as_u64().unwrap() as u32;
+            assert_eq!((img.width(), img.height()), saccade::sinks::evidence::crop_size(size), "{c}");
+        }
+    }
 
     let v = validate(&s.log());
     assert_eq!(v["problems"], Value::Array(vec![]), "{v}");
@@ -398,6 +426,18 @@ fn config_errors_name_file_line_and_field() {
     let t = text.replace("budget_ms = 100", "budget_ms = 100\nmin_patches = 9\nmax_patches = 8");
     let e = err(&t);
     assert!(e.contains(&format!(":{}:1:", line_of(&t, "max_patches"))) && e.contains("[engine] max_patches"), "{e}");
+    // The outcome targets are range-checked and located the same way.
+    let t = text.replace(
+        "budget_ms = 100",
+        "budget_ms = 100
+false_alarm_target = 1.5",
+    );
+    let e = err(&t);
+    assert!(
+        e.contains(&format!(":{}:1:", line_of(&t, "false_alarm_target")))
+            && e.contains("[engine] false_alarm_target = 1.5"),
+        "{e}"
+    );
 }
 
 /// Every path under `dir`, sorted.

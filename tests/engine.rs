@@ -249,7 +249,8 @@ fn bad_settings_are_refused() {
 
 #[test]
 fn evidence_keeps_its_quota_and_switches_off_when_it_cannot_write() {
-    use saccade::sinks::evidence::Evidence;
+    use saccade::engine::Outcome;
+    use saccade::sinks::evidence::{self, Evidence};
     use saccade::sinks::EvidenceConfig;
     let (_d, mut e) = engine(&DesignedParams::default());
     let frame = sheet_with_spot(640, 480, 400, 200, 6);
@@ -259,21 +260,32 @@ fn evidence_keeps_its_quota_and_switches_off_when_it_cannot_write() {
     let cfg =
         EvidenceConfig { enabled: true, dir: dir.path().join("ev"), quota_mb: 0.05, max_age_hours: 1.0, crops: 3 };
     let mut ev = Evidence::open(&cfg);
-    let first = ev.write(&report, &frame.image, "a");
-    assert_eq!(first.len(), 4, "overview and three crops");
-    let overview = image::open(&first[0]).unwrap();
-    assert_eq!((overview.width(), overview.height()), (80, 60), "the thumbnail's size");
+    let first = ev.write(&report, &frame.image, "a").expect("evidence written");
+    // The documented sizes: a 640×480 frame stays at full size under the title band; a
+    // crop is the 2P square around its patch, enlarged, over its caption.
+    let overview = image::open(&first.overview).unwrap();
+    assert_eq!(evidence::overview_size(640, 480), (640, 480 + evidence::HEADER));
+    assert_eq!((overview.width(), overview.height()), evidence::overview_size(640, 480));
+    assert_eq!(evidence::overview_size(2448, 2048), (1224, 1024 + evidence::HEADER));
+    let findings: usize = report.classes.iter().filter(|c| c.outcome != Outcome::Clear).map(|c| c.patches.len()).sum();
+    assert!(findings >= 1, "the spot is a finding: {:?}", report.classes);
+    assert_eq!(first.crops.len(), findings.min(3), "one crop per finding patch, at most `crops`");
+    let p = report.patches[0].size;
+    for c in &first.crops {
+        let img = image::open(c).unwrap();
+        assert_eq!((img.width(), img.height()), evidence::crop_size(p), "{c}");
+    }
     for n in 0..100 {
         ev.write(&report, &frame.image, &format!("f{n}"));
     }
     let on_disk: u64 = std::fs::read_dir(&cfg.dir).unwrap().map(|f| f.unwrap().metadata().unwrap().len()).sum();
     assert!(on_disk <= 50 * 1024 + 1024 && on_disk == ev.total_bytes(), "{on_disk} bytes kept");
-    assert!(!cfg.dir.join("a-overview.png").exists(), "the oldest went first");
+    assert!(!cfg.dir.join("a-overview.jpg").exists(), "the oldest went first");
     assert!(ev.enabled);
     // A folder that cannot exist (its parent is a file) disables evidence, without panic.
     std::fs::write(dir.path().join("file"), b"x").unwrap();
     let bad = EvidenceConfig { dir: dir.path().join("file/ev"), ..cfg };
     let mut ev = Evidence::open(&bad);
     assert!(!ev.enabled);
-    assert!(ev.write(&report, &frame.image, "b").is_empty());
+    assert!(ev.write(&report, &frame.image, "b").is_none());
 }

@@ -166,7 +166,7 @@ fn coverage(kind: EstimatorKind, k: usize, draws: usize) -> Vec<f64> {
         let weights = order.weights(kk);
         let samples = sample_psi(&weights, &f, d, 200, &mut rng);
         let probs = probabilities(&head(&samples), classes, Activation::Sigmoid);
-        for (c, r) in summarise(&probs, &names, &[0.5, 0.5], 0.9).iter().enumerate() {
+        for (c, r) in summarise(&probs, &names, &[(0.5, 0.5), (0.5, 0.5)], 0.9).iter().enumerate() {
             hits[c] += usize::from(r.interval[0] <= exact[c] && exact[c] <= r.interval[1]);
         }
     }

@@ -336,10 +336,17 @@ fn sweep_exhaustive_row_matches_a_plain_exhaustive_analysis() {
         "deadline_misses",
         "deadline_miss_pct",
         "reviews",
+        "miss_rate",
+        "false_alarm_rate",
+        "review_share",
         "mark_recall",
         "mark_attention",
         "recall_dark_spot",
         "recall_bright_spot",
+        "miss_dark_spot",
+        "miss_bright_spot",
+        "false_alarm_dark_spot",
+        "false_alarm_bright_spot",
     ];
     assert_eq!(lines[0], header);
     assert_eq!(csv::header(&classes), header);
@@ -364,6 +371,8 @@ fn sweep_exhaustive_row_matches_a_plain_exhaustive_analysis() {
         for name in ["macro_f1", "f1_dark_spot", "f1_bright_spot", "ece", "deadline_miss_pct", "reviews"] {
             num(l, name);
         }
+        let share = num(l, "review_share");
+        assert!((0.0..=1.0).contains(&share), "{l:?}");
     }
     let ex = lines.iter().find(|l| l[0] == "exhaustive").unwrap();
     assert_eq!((ex[col("budget_ms")], ex[col("estimator")], ex[col("deadline_misses")]), ("", "exhaustive", ""));

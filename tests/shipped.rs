@@ -16,6 +16,7 @@ fn the_shipped_bundle_finds_the_placed_defects() {
     let classes = bundle.manifest.classes.clone();
     let bundle = Arc::new(bundle);
     let thresholds = bundle.manifest.thresholds.clone();
+    let reported = bundle.reported_thresholds();
     // No time budget here: the machine running tests is shared, and the question is what
     // the model sees, not how fast (`saccade sweep` measures that).
     let settings = Settings { budget_ms: 60_000.0, ..Settings::default() };
@@ -28,7 +29,7 @@ fn the_shipped_bundle_finds_the_placed_defects() {
         let baseline = bundle.baseline_probabilities(&f.image).unwrap().unwrap();
         thumb_said.push(baseline.iter().zip(&thresholds).map(|(p, t)| p >= t).collect::<Vec<bool>>());
         let report = engine.analyze(&Frame::new(n, format!("scene:{seed}"), f.image), seed).unwrap();
-        said.push(report.classes.iter().map(|c| c.probability >= c.threshold).collect::<Vec<bool>>());
+        said.push(report.classes.iter().zip(&reported).map(|(c, t)| c.probability >= *t).collect::<Vec<bool>>());
         truth.push(classes.iter().map(|c| placed.contains(&c.as_str())).collect::<Vec<bool>>());
     }
     let thumb = f1(&truth, &thumb_said);

@@ -100,6 +100,10 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
 
     let bundle = Bundle::load(&out, &[1, 5]).unwrap();
     assert!(bundle.baseline.is_some());
+    // Calibration on the held-out split: one map per class, fitted on its 4 frames.
+    let cal = bundle.calibration.as_ref().expect("saccade train writes calibration.json");
+    assert_eq!(cal.frames, t.held_out.frames);
+    assert_eq!(cal.classes.iter().map(|c| c.name.as_str()).collect::<Vec<_>>(), saccade::demo::scene::CLASSES);
     let mut rng = ChaCha8Rng::seed_from_u64(9);
     let mut rand = |n: usize| -> Vec<f32> { (0..n).map(|_| rng.random_range(-2.0f32..2.0)).collect() };
     let s = &t.sampled;

@@ -14,7 +14,7 @@ use saccade::engine::thumbnail::{area_reduce_loop, area_reduce_simd};
 use saccade::engine::{Bundle, CellOrder, Engine, EstimatorKind, Settings};
 use saccade::sinks::jsonl::JsonlLog;
 use saccade::sinks::record::{rfc3339, FrameRecord, SCHEMA};
-use saccade::sinks::{LogConfig, RecordPolicy, SyncPolicy};
+use saccade::sinks::{LogConfig, PatchPolicy, RecordPolicy, SyncPolicy};
 use saccade::source::{decode_bytes, DEFAULT_MAX_PIXELS};
 use serde::Serialize;
 use tract_onnx::prelude::Tensor;
@@ -193,12 +193,16 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     let report = report.expect("at least one repeat");
     // A typical frame record through the daemon's own log writer, once with the default
     // sync policy and once with an fsync per record.
+    // The default record: no per-patch list ([log] patches = "none").
+    let mut report = report;
+    report.patches.clear();
     let record = FrameRecord {
         schema: SCHEMA,
         record: "frame",
         time: rfc3339(SystemTime::now()),
         captured: rfc3339(frame.captured),
         age_ms: report.times_ms.total,
+        evidence: None,
         report: &report,
     };
     for (sync, label) in [(SyncPolicy::Interval, "sync = interval"), (SyncPolicy::Always, "sync = always")] {
@@ -206,6 +210,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
         let cfg = LogConfig {
             path: path.clone(),
             records: RecordPolicy::All,
+            patches: PatchPolicy::None,
             rotate_mb: 64.0,
             keep: 1,
             sync,

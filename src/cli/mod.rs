@@ -2,6 +2,7 @@
 
 pub mod analyze;
 pub mod bench;
+pub mod calibrate;
 pub mod demo;
 pub mod probe;
 pub mod run;

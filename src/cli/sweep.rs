@@ -60,6 +60,17 @@ pub struct SweepArgs {
     /// Write a PNG plot of macro F1 and analysis time against budget.
     #[arg(long)]
     pub plot: Option<PathBuf>,
+    /// Outcome targets, as `[engine] miss_target` in the daemon's config: the largest share
+    /// of frames carrying a class that may be called clear (bundles with calibration.json).
+    #[arg(long, default_value_t = 0.1)]
+    pub miss_target: f64,
+    /// As `[engine] false_alarm_target`: the largest share of frames without a class that
+    /// may be called detected.
+    #[arg(long, default_value_t = 0.1)]
+    pub false_alarm_target: f64,
+    /// As `[engine] target_confidence`.
+    #[arg(long, default_value_t = 0.9)]
+    pub target_confidence: f64,
     /// Equal-width bins of the expected calibration error.
     #[arg(long, default_value_t = 10)]
     pub ece_bins: usize,
@@ -72,7 +83,13 @@ pub struct SweepArgs {
 
 impl SweepArgs {
     fn settings(&self) -> Settings {
-        self.limits.apply(Settings { estimator: self.estimator, ..Settings::default() })
+        self.limits.apply(Settings {
+            estimator: self.estimator,
+            miss_target: self.miss_target,
+            false_alarm_target: self.false_alarm_target,
+            target_confidence: self.target_confidence,
+            ..Settings::default()
+        })
     }
 
     /// Budgets ascending without repeats, after checking every value.
@@ -132,6 +149,7 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
     args.check()?;
     let budgets = args.budgets()?;
     let base = args.settings();
+    base.check(None).map_err(|e| anyhow::anyhow!("--{}", e.to_string().replace('_', "-")))?;
     let labels = read_labels(&args.labels)?;
     let bundle = Arc::new(Bundle::load(&args.bundle, &base.batch_sizes())?);
     let m = bundle.manifest.clone();
@@ -227,7 +245,9 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
     }
     bar.finish_and_clear();
 
-    let (t, bins) = (&m.thresholds, args.ece_bins);
+    // F1 of the engine rows at the manifest's thresholds on the reported (calibrated)
+    // scale; the thumbnail-only network's probabilities are its own, uncalibrated.
+    let (t, bins) = (&bundle.reported_thresholds(), args.ece_bins);
     let mut rows: Vec<Row> = tallies
         .into_iter()
         .zip(&budgets)
@@ -235,7 +255,7 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
         .collect();
     rows.push(exhaustive.finish(RowKind::Exhaustive, None, Some(EstimatorKind::Exhaustive), t, bins));
     if !baseline.is_empty() {
-        rows.push(baseline.finish(RowKind::ThumbnailOnly, None, None, t, bins));
+        rows.push(baseline.finish(RowKind::ThumbnailOnly, None, None, &m.thresholds, bins));
     }
 
     println!(
@@ -246,6 +266,7 @@ pub fn run(args: SweepArgs) -> anyhow::Result<ExitCode> {
         m.thresholds
     );
     print_table(&m.classes, &rows);
+    print_outcomes(&m.classes, &rows, engine.decision(), &base, bundle.calibration.is_some());
     print_marks(&m.classes, &rows);
     if let Some(path) = &args.csv {
         std::fs::write(path, csv::to_csv(&m.classes, &rows)).with_context(|| format!("writing {}", path.display()))?;
@@ -321,6 +342,56 @@ fn table(head: &[String], body: &[Vec<String>]) {
             .collect();
         println!("{}", cells.join("  ").trim_end());
     }
+}
+
+/// What the three-way outcome achieved on these frames, per engine row.
+fn print_outcomes(
+    classes: &[String],
+    rows: &[Row],
+    decision: &[saccade::engine::Decision],
+    s: &Settings,
+    calibrated: bool,
+) {
+    let pct = |v: Option<f64>| v.map_or_else(|| "-".to_string(), |v| format!("{:.1}", 100.0 * v));
+    println!();
+    if calibrated {
+        println!(
+            "outcomes (targets: misses ≤ {:.1} %, false alarms ≤ {:.1} %, each at {:.0} % confidence); clear below / detected above: {}",
+            100.0 * s.miss_target,
+            100.0 * s.false_alarm_target,
+            100.0 * s.target_confidence,
+            classes.iter().zip(decision).map(|(c, d)| format!("{c} {:.3}/{:.3}", d.0, d.1)).collect::<Vec<_>>().join(", ")
+        );
+    } else {
+        println!("outcomes (the bundle has no calibration.json: one threshold per class, no risk targets):");
+    }
+    let mut head =
+        vec!["row".to_string(), "budget ms".into(), "estimator".into(), "miss %".into(), "false alarm %".into()];
+    head.push("to review %".into());
+    head.extend(classes.iter().map(|c| format!("{c} miss/fa %")));
+    let body: Vec<Vec<String>> = rows
+        .iter()
+        .filter_map(|r| r.outcomes.as_ref().map(|o| (r, o)))
+        .map(|(r, o)| {
+            let mut f = vec![
+                r.row.name().to_string(),
+                r.budget_ms.map_or_else(|| "-".into(), |b| format!("{b}")),
+                r.estimator.map_or_else(|| "-".into(), |e| e.to_string()),
+                pct(o.miss_rate),
+                pct(o.false_alarm_rate),
+                pct(Some(o.review_share)),
+            ];
+            f.extend((0..classes.len()).map(|c| {
+                format!(
+                    "{}/{}",
+                    pct(o.per_class_miss.get(c).copied().flatten()),
+                    pct(o.per_class_false_alarm.get(c).copied().flatten())
+                )
+            }));
+            f
+        })
+        .collect();
+    table(&head, &body);
 }
 
 /// Where attention looked, for labels with mark positions: a second, shorter table.

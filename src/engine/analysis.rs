@@ -18,7 +18,7 @@ use super::patches::{Geometry, Normalizer};
 use super::report::{PatchUse, Report, StageTimes, StopReason};
 use super::settings::{Settings, SettingsError};
 use super::thumbnail::{area_reduce, thumbnail_size};
-use super::uncertainty::{probabilities, sample_psi, summarise, ClassResult};
+use super::uncertainty::{probabilities, sample_psi, summarise, ClassResult, Decision, Outcome, Spot};
 
 #[derive(Debug, thiserror::Error)]
 pub enum EngineError {
@@ -51,7 +51,12 @@ pub struct Engine {
     cost: CostModel,
     mask: Option<Mask>,
     mask_cache: Option<(Geometry, Vec<f64>)>,
+    /// Per class `(clear_below, detected_above)` for the current settings.
+    decision: Vec<Decision>,
 }
+
+/// At most this many patches are named per finding.
+pub const MAX_SPOTS: usize = 3;
 
 impl Engine {
     /// Checks `settings` against the bundle and builds the plans they need.
@@ -59,7 +64,15 @@ impl Engine {
         let norm = Normalizer::new(&bundle.manifest.normalization);
         let dry = &bundle.dry_run;
         let cost = CostModel::new(dry.per_patch.iter().map(|(b, t)| (*b, t.as_secs_f64())), dry.head.as_secs_f64());
-        let mut engine = Self { bundle, settings: Settings::default(), norm, cost, mask: None, mask_cache: None };
+        let mut engine = Self {
+            bundle,
+            settings: Settings::default(),
+            norm,
+            cost,
+            mask: None,
+            mask_cache: None,
+            decision: Vec::new(),
+        };
         engine.set_settings(settings)?;
         Ok(engine)
     }
@@ -88,8 +101,14 @@ impl Engine {
             }
         }
         self.bundle.head.plan(&[settings.samples + 1, m.feature_dim])?;
+        self.decision = decision(&self.bundle, &settings);
         self.settings = settings;
         Ok(())
+    }
+
+    /// Per class `(clear_below, detected_above)` in use.
+    pub fn decision(&self) -> &[Decision] {
+        &self.decision
     }
 
     /// Replaces the mask (None: examine the whole frame).
@@ -139,15 +158,10 @@ impl Engine {
         let t = Instant::now();
         let weights = order.weights(k);
         let classes = self.head(&weights, &feats, &mut rng)?;
-        let head_time = t.elapsed();
-        self.cost.observe_head(k, head_time.as_secs_f64());
-        times.head = ms(head_time);
-        let elapsed = start.elapsed();
-        times.total = ms(elapsed);
 
         let m = &self.bundle.manifest;
         let cols = geometry.cols;
-        let patches = order.cells[..k]
+        let patches: Vec<PatchUse> = order.cells[..k]
             .iter()
             .zip(&weights.w)
             .map(|(&i, &w)| {
@@ -155,6 +169,13 @@ impl Engine {
                 PatchUse { x, y, size: m.patch_size, row: i / cols, col: i % cols, attention: a[i], weight: w }
             })
             .collect();
+        let mut classes = classes;
+        self.spots(&feats, &patches, &mut classes)?;
+        let head_time = t.elapsed();
+        self.cost.observe_head(k, head_time.as_secs_f64());
+        times.head = ms(head_time);
+        let elapsed = start.elapsed();
+        times.total = ms(elapsed);
         Ok(Report {
             seq: frame.seq,
             origin: frame.origin.clone(),
@@ -227,9 +248,61 @@ impl Engine {
         let rows = sample_psi(weights, feats, d, s.samples, rng);
         let input = Tensor::from_shape(&[s.samples + 1, d], &rows).expect("rows sized from samples and feature_dim");
         let (_, logits) = self.bundle.head.run_flat(input)?;
-        let probs = probabilities(&logits, m.classes.len(), m.activation);
-        let thresholds = s.thresholds.as_ref().unwrap_or(&m.thresholds);
-        Ok(summarise(&probs, &m.classes, thresholds, s.interval))
+        let probs = self.calibrated(probabilities(&logits, m.classes.len(), m.activation));
+        Ok(summarise(&probs, &m.classes, &self.decision, s.interval))
+    }
+
+    /// Applies the bundle's calibration maps (rows of one probability per class); the
+    /// identity without a calibration file.
+    fn calibrated(&self, mut probs: Vec<f64>) -> Vec<f64> {
+        if let Some(cal) = &self.bundle.calibration {
+            let c = cal.classes.len();
+            for (i, p) in probs.iter_mut().enumerate() {
+                *p = cal.classes[i % c].map.apply(*p);
+            }
+        }
+        probs
+    }
+
+    /// Per-patch class evidence for the classes that are not clear: the head on each
+    /// examined patch's features alone (what a frame of only that patch would score),
+    /// calibrated like the frame. Names the patches that would not be clear on their own,
+    /// strongest first, up to [`MAX_SPOTS`]; the single strongest when none would.
+    fn spots(&self, feats: &[f32], patches: &[PatchUse], classes: &mut [ClassResult]) -> Result<(), EngineError> {
+        if patches.is_empty() || classes.iter().all(|c| c.outcome == Outcome::Clear) {
+            return Ok(());
+        }
+        let m = &self.bundle.manifest;
+        let (d, c) = (m.feature_dim, m.classes.len());
+        // Rows go through the head in blocks of the planned shape, padded with zeros, so
+        // that no new plan is built inside the budget.
+        let rows = self.settings.samples + 1;
+        let mut probs = Vec::with_capacity(patches.len() * c);
+        for block in feats[..patches.len() * d].chunks(rows * d) {
+            let mut padded = block.to_vec();
+            padded.resize(rows * d, 0.0);
+            let input = Tensor::from_shape(&[rows, d], &padded).expect("rows sized from samples and feature_dim");
+            let (_, logits) = self.bundle.head.run_flat(input)?;
+            let n = block.len() / d;
+            probs.extend(probabilities(&logits[..n * c], c, m.activation));
+        }
+        let probs = self.calibrated(probs);
+        for (k, class) in classes.iter_mut().enumerate().filter(|(_, r)| r.outcome != Outcome::Clear) {
+            let mut order: Vec<usize> = (0..patches.len()).collect();
+            order.sort_by(|&i, &j| probs[j * c + k].total_cmp(&probs[i * c + k]));
+            let strong = order.iter().filter(|&&i| probs[i * c + k] >= class.clear_below).count();
+            class.patches = order[..strong.clamp(1, MAX_SPOTS)]
+                .iter()
+                .map(|&i| Spot {
+                    x: patches[i].x,
+                    y: patches[i].y,
+                    size: patches[i].size,
+                    patch: i,
+                    probability: probs[i * c + k],
+                })
+                .collect();
+        }
+        Ok(())
     }
 
     fn mask_factors(&mut self, g: &Geometry) -> Result<Option<Vec<f64>>, MaskError> {
@@ -279,6 +352,22 @@ impl Engine {
         )?;
         self.cost = cost;
         Ok((k, stop, feats))
+    }
+}
+
+/// Per class `(clear_below, detected_above)`: the config's single thresholds when it sets
+/// them; else the calibration file's risk-controlled pair for the config's targets; else
+/// the manifest's single threshold (a bundle without a calibration file behaves as before).
+fn decision(bundle: &Bundle, s: &Settings) -> Vec<Decision> {
+    if let Some(t) = &s.thresholds {
+        return t.iter().map(|&t| (t, t)).collect();
+    }
+    match &bundle.calibration {
+        Some(cal) if cal.targets == s.targets() => {
+            cal.classes.iter().map(|c| (c.clear_below, c.detected_above)).collect()
+        }
+        Some(cal) => cal.classes.iter().map(|c| c.thresholds(&s.targets())).collect(),
+        None => bundle.manifest.thresholds.iter().map(|&t| (t, t)).collect(),
     }
 }
 

@@ -17,7 +17,7 @@ mod settings;
 pub mod thumbnail;
 pub mod uncertainty;
 
-pub use analysis::{softmax, Attention, Engine, EngineError, Thumbnail};
+pub use analysis::{softmax, Attention, Engine, EngineError, Thumbnail, MAX_SPOTS};
 pub use estimator::{CellOrder, EstimatorKind, Weights};
 pub use frame::Frame;
 pub use mask::{Mask, MaskConfig, MaskError, Rect};
@@ -25,4 +25,4 @@ pub use networks::{Bundle, BundleError, DryRunCosts, Network, NetworkProblem};
 pub use patches::{Geometry, Normalizer};
 pub use report::{PatchUse, Report, StageTimes, StopReason};
 pub use settings::{Settings, SettingsError};
-pub use uncertainty::{ClassResult, Outcome};
+pub use uncertainty::{ClassResult, Decision, Outcome, Spot};

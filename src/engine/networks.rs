@@ -18,6 +18,7 @@ use tract_onnx::prelude::*;
 use super::patches::Normalizer;
 use super::thumbnail::area_reduce;
 use super::uncertainty::probabilities;
+use crate::bundle::calibration::{Calibration, CalibrationError};
 use crate::bundle::{Manifest, ManifestError, NetworkRef, MANIFEST};
 
 /// Why a bundle cannot be loaded or one of its networks cannot run.
@@ -25,6 +26,8 @@ use crate::bundle::{Manifest, ManifestError, NetworkRef, MANIFEST};
 pub enum BundleError {
     #[error(transparent)]
     Manifest(#[from] ManifestError),
+    #[error(transparent)]
+    Calibration(#[from] CalibrationError),
     #[error("{}: {problem}", path.display())]
     Network { path: PathBuf, problem: NetworkProblem },
 }
@@ -206,6 +209,9 @@ pub struct Bundle {
     pub features: Network,
     pub head: Network,
     pub baseline: Option<Network>,
+    /// `calibration.json` when the bundle has one; without it probabilities are the
+    /// head's own and each class has the manifest's single threshold.
+    pub calibration: Option<Calibration>,
     pub dry_run: DryRunCosts,
 }
 
@@ -214,6 +220,7 @@ impl Bundle {
     /// patch batch sizes (1 and 2 are always tried: they prove a symbolic batch axis).
     pub fn load(dir: &Path, batch_sizes: &[usize]) -> Result<Self, BundleError> {
         let manifest = Manifest::read(&dir.join(MANIFEST))?;
+        let calibration = Calibration::read_optional(dir, &manifest.classes)?;
         let attention = Network::load(dir.join(&manifest.attention.file), &manifest.attention, 4, Some(3))?;
         let features = Network::load(dir.join(&manifest.features.file), &manifest.features, 4, Some(3))?;
         let head = Network::load(dir.join(&manifest.head.file), &manifest.head, 2, None)?;
@@ -228,6 +235,7 @@ impl Bundle {
             features,
             head,
             baseline,
+            calibration,
             dry_run: DryRunCosts::default(),
         };
         bundle.dry_run = bundle.check_by_running(batch_sizes)?;
@@ -284,6 +292,17 @@ impl Bundle {
         let t0 = Instant::now();
         self.head.run(input)?;
         Ok(DryRunCosts { per_patch, head: t0.elapsed() })
+    }
+
+    /// The manifest's single per-class thresholds on the scale of the probabilities the
+    /// engine reports: mapped through the calibration map when there is one (an increasing
+    /// map, so the same frames fall on each side), as they are otherwise.
+    pub fn reported_thresholds(&self) -> Vec<f64> {
+        let t = &self.manifest.thresholds;
+        match &self.calibration {
+            Some(cal) => t.iter().zip(&cal.classes).map(|(&t, c)| c.map.apply(t)).collect(),
+            None => t.clone(),
+        }
     }
 
     /// Checks an attention output shape against a thumbnail of `h × w` and returns the

@@ -3,6 +3,7 @@
 use serde::{Deserialize, Serialize};
 
 use super::estimator::EstimatorKind;
+use crate::bundle::calibration::Targets;
 
 /// Per-frame knobs; the daemon reloads these without reloading the bundle.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -21,8 +22,16 @@ pub struct Settings {
     pub samples: usize,
     /// Level of the central interval, e.g. 0.9 for 5 %–95 %.
     pub interval: f64,
-    /// Per-class thresholds overriding the bundle's defaults.
+    /// Per-class single thresholds overriding the bundle's (clear below, detected above
+    /// the same value; no risk control).
     pub thresholds: Option<Vec<f64>>,
+    /// Largest share of frames carrying a class that may be called `clear` (bundles with
+    /// a calibration file).
+    pub miss_target: f64,
+    /// Largest share of frames without a class that may be called `detected`.
+    pub false_alarm_target: f64,
+    /// Confidence, over the calibration frames, that each target holds.
+    pub target_confidence: f64,
 }
 
 impl Default for Settings {
@@ -36,6 +45,9 @@ impl Default for Settings {
             samples: 64,
             interval: 0.9,
             thresholds: None,
+            miss_target: 0.1,
+            false_alarm_target: 0.1,
+            target_confidence: 0.9,
         }
     }
 }
@@ -59,6 +71,8 @@ pub enum SettingsError {
     ThresholdCount { classes: usize, found: usize },
     #[error("thresholds: {0} is outside [0, 1]")]
     ThresholdRange(f64),
+    #[error("{field} = {value}: expected a share strictly between 0 and 1, e.g. 0.1")]
+    Target { field: &'static str, value: f64 },
 }
 
 impl SettingsError {
@@ -72,6 +86,7 @@ impl SettingsError {
             Self::Interval(_) => "interval",
             Self::Samples => "samples",
             Self::ThresholdCount { .. } | Self::ThresholdRange(_) => "thresholds",
+            Self::Target { field, .. } => field,
         }
     }
 }
@@ -97,6 +112,15 @@ impl Settings {
         if self.samples == 0 {
             return Err(SettingsError::Samples);
         }
+        for (field, value) in [
+            ("miss_target", self.miss_target),
+            ("false_alarm_target", self.false_alarm_target),
+            ("target_confidence", self.target_confidence),
+        ] {
+            if !(value > 0.0 && value < 1.0) {
+                return Err(SettingsError::Target { field, value });
+            }
+        }
         if let Some(t) = &self.thresholds {
             if let Some(classes) = classes.filter(|&c| c != t.len()) {
                 return Err(SettingsError::ThresholdCount { classes, found: t.len() });
@@ -106,6 +130,11 @@ impl Settings {
             }
         }
         Ok(())
+    }
+
+    /// The outcome targets as the calibration file states them.
+    pub fn targets(&self) -> Targets {
+        Targets { miss: self.miss_target, false_alarm: self.false_alarm_target, confidence: self.target_confidence }
     }
 
     /// Batch sizes the loop may use: powers of two below `batch`, and `batch`.
@@ -139,6 +168,9 @@ mod tests {
             (Settings { interval: 1.0, ..d() }, "interval"),
             (Settings { samples: 0, ..d() }, "samples"),
             (Settings { thresholds: Some(vec![0.5, 1.2]), ..d() }, "thresholds"),
+            (Settings { miss_target: 0.0, ..d() }, "miss_target"),
+            (Settings { false_alarm_target: 1.0, ..d() }, "false_alarm_target"),
+            (Settings { target_confidence: f64::NAN, ..d() }, "target_confidence"),
         ];
         for (s, field) in cases {
             let e = s.check(None).unwrap_err();

@@ -6,31 +6,63 @@ use rand_distr::StandardNormal;
 use serde::Serialize;
 
 use super::estimator::Weights;
+use super::report::{six, six_pair};
 use crate::bundle::Activation;
 
-/// What a class's interval says relative to its threshold.
+/// What a class's interval says relative to its two thresholds.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Outcome {
-    /// The whole interval lies above the threshold.
+    /// The whole interval lies above `detected_above`.
     Detected,
-    /// The interval straddles the threshold: a person should look at the frame.
+    /// Anything else: the interval reaches into the band between the thresholds, where
+    /// the calibration frames cannot back either call, so a person should look.
     Review,
-    /// The whole interval lies below the threshold.
+    /// The whole interval lies below `clear_below`.
     Clear,
 }
+
+/// A patch whose own evidence carries a class: the head applied to that patch's features
+/// alone gives `probability`.
+#[derive(Clone, Debug, Serialize)]
+pub struct Spot {
+    /// Top-left corner in frame pixels (may be negative at the border) and side.
+    pub x: i64,
+    pub y: i64,
+    pub size: u32,
+    /// Index into the report's examined patches.
+    #[serde(skip)]
+    pub patch: usize,
+    #[serde(serialize_with = "six")]
+    pub probability: f64,
+}
+
+/// Per class, the outcome thresholds on the calibrated probability:
+/// `(clear_below, detected_above)`; equal for a single-threshold bundle.
+pub type Decision = (f64, f64);
 
 #[derive(Clone, Debug, Serialize)]
 pub struct ClassResult {
     pub name: String,
     /// Probability at the point estimate `Psi_hat`.
+    #[serde(serialize_with = "six")]
     pub probability: f64,
     /// Standard deviation of the probability over the Gaussian samples of `Psi`.
+    #[serde(serialize_with = "six")]
     pub spread: f64,
     /// Central interval of the probability at the configured level.
+    #[serde(serialize_with = "six_pair")]
     pub interval: [f64; 2],
-    pub threshold: f64,
+    /// Clear when the whole interval is below this.
+    #[serde(serialize_with = "six")]
+    pub clear_below: f64,
+    /// Detected when the whole interval is above this.
+    #[serde(serialize_with = "six")]
+    pub detected_above: f64,
     pub outcome: Outcome,
+    /// For a class that is not clear: the examined patches that carry it, strongest first.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub patches: Vec<Spot>,
 }
 
 /// Rows `[Psi_hat, Psi_1 .. Psi_S]` (each of length `d`), `Psi_s ~ N(Psi_hat, Sigma_hat)`,
@@ -89,7 +121,7 @@ pub fn quantile(sorted: &[f64], q: f64) -> f64 {
 }
 
 /// Per-class summary of probabilities `[1 + S, classes]` (row 0 = point estimate).
-pub fn summarise(probs: &[f64], names: &[String], thresholds: &[f64], level: f64) -> Vec<ClassResult> {
+pub fn summarise(probs: &[f64], names: &[String], decision: &[Decision], level: f64) -> Vec<ClassResult> {
     let c = names.len();
     let n = probs.len() / c;
     (0..c)
@@ -103,15 +135,24 @@ pub fn summarise(probs: &[f64], names: &[String], thresholds: &[f64], level: f64
             let tail = (1.0 - level) / 2.0;
             // The point estimate always lies inside its own interval.
             let (spread, interval) = (var.sqrt(), [quantile(&s, tail).min(point), quantile(&s, 1.0 - tail).max(point)]);
-            let t = thresholds[k];
-            let outcome = if interval[0] > t {
+            let (clear_below, detected_above) = decision[k];
+            let outcome = if interval[0] > detected_above {
                 Outcome::Detected
-            } else if interval[1] < t {
+            } else if interval[1] < clear_below {
                 Outcome::Clear
             } else {
                 Outcome::Review
             };
-            ClassResult { name: names[k].clone(), probability: point, spread, interval, threshold: t, outcome }
+            ClassResult {
+                name: names[k].clone(),
+                probability: point,
+                spread,
+                interval,
+                clear_below,
+                detected_above,
+                outcome,
+                patches: Vec::new(),
+            }
         })
         .collect()
 }
@@ -131,12 +172,17 @@ mod tests {
     #[test]
     fn outcome_follows_interval_against_threshold() {
         let names = vec!["a".to_string()];
-        let hi = summarise(&[0.9, 0.8, 0.85, 0.95], &names, &[0.5], 0.9);
+        let hi = summarise(&[0.9, 0.8, 0.85, 0.95], &names, &[(0.5, 0.5)], 0.9);
         assert_eq!(hi[0].outcome, Outcome::Detected);
-        let mid = summarise(&[0.5, 0.3, 0.7, 0.6], &names, &[0.5], 0.9);
+        let mid = summarise(&[0.5, 0.3, 0.7, 0.6], &names, &[(0.5, 0.5)], 0.9);
         assert_eq!(mid[0].outcome, Outcome::Review);
-        let lo = summarise(&[0.1, 0.05, 0.2, 0.15], &names, &[0.5], 0.9);
+        let lo = summarise(&[0.1, 0.05, 0.2, 0.15], &names, &[(0.5, 0.5)], 0.9);
         assert_eq!(lo[0].outcome, Outcome::Clear);
+        // Two thresholds: a narrow interval inside the band is for a person.
+        let band = summarise(&[0.5, 0.49, 0.51, 0.5], &names, &[(0.3, 0.7)], 0.9);
+        assert_eq!(band[0].outcome, Outcome::Review);
+        let low = summarise(&[0.25, 0.2, 0.28, 0.26], &names, &[(0.3, 0.7)], 0.9);
+        assert_eq!(low[0].outcome, Outcome::Clear);
     }
 
     #[test]

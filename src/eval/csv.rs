@@ -15,9 +15,13 @@
 //! | `p50_ms`, `p99_ms` | analysis time percentiles (nearest rank) |
 //! | `deadline_misses`, `deadline_miss_pct` | analyses past the budget (budget rows) |
 //! | `reviews` | (analysis, class) pairs with outcome `review` |
+//! | `miss_rate` | share of (analysis, class) carrying the class that were called `clear` |
+//! | `false_alarm_rate` | share of (analysis, class) without the class called `detected` |
+//! | `review_share` | share of analyses with at least one class to `review` (sent to a person) |
 //! | `mark_recall` | share of labelled marks whose cell was examined (labels with positions) |
 //! | `mark_attention` | mean attention on the cells holding a frame's marks |
 //! | `recall_<class>` | `mark_recall` of one class, one column per class |
+//! | `miss_<class>`, `false_alarm_<class>` | the two rates of one class, one column each per class |
 //!
 //! Scores and shares are fractions in [0, 1] written at full precision; an empty field
 //! means the column does not apply to the row.
@@ -34,8 +38,11 @@ pub fn header(classes: &[String]) -> Vec<String> {
             .iter()
             .map(|s| s.to_string()),
     );
+    h.extend(["miss_rate", "false_alarm_rate", "review_share"].map(String::from));
     h.extend(["mark_recall".to_string(), "mark_attention".to_string()]);
     h.extend(classes.iter().map(|c| format!("recall_{c}")));
+    h.extend(classes.iter().map(|c| format!("miss_{c}")));
+    h.extend(classes.iter().map(|c| format!("false_alarm_{c}")));
     h
 }
 
@@ -70,10 +77,19 @@ pub fn fields(r: &Row) -> Vec<String> {
         opt(r.deadline_misses),
         opt(r.deadline_miss_pct),
         opt(r.reviews),
+    ]);
+    let o = r.outcomes.as_ref();
+    f.extend([
+        opt(o.and_then(|o| o.miss_rate)),
+        opt(o.and_then(|o| o.false_alarm_rate)),
+        opt(o.map(|o| o.review_share)),
         opt(r.mark_recall),
         opt(r.mark_attention),
     ]);
-    f.extend((0..r.per_class_f1.len()).map(|c| opt(r.mark_recall_per_class.get(c).copied().flatten())));
+    let classes = r.per_class_f1.len();
+    f.extend((0..classes).map(|c| opt(r.mark_recall_per_class.get(c).copied().flatten())));
+    f.extend((0..classes).map(|c| opt(o.and_then(|o| o.per_class_miss.get(c).copied().flatten()))));
+    f.extend((0..classes).map(|c| opt(o.and_then(|o| o.per_class_false_alarm.get(c).copied().flatten()))));
     f
 }
 

@@ -2,7 +2,8 @@
 //! the plot that `saccade sweep` writes.
 
 pub mod csv;
-pub mod font;
+/// The stroke font lives at the bottom layer, shared with the evidence images.
+pub use crate::font;
 pub mod marks;
 pub mod metrics;
 pub mod plot;

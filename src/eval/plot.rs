@@ -1,8 +1,9 @@
 //! The sweep's PNG: macro F1 against budget (top panel, with the exhaustive and
 //! thumbnail-only answers as dashed horizontal lines) and p50/p99 analysis time against
 //! budget (bottom panel, with the budget itself as a dashed line). The budget axis is
-//! logarithmic with a tick at every budget swept. Drawn with `image` and the built-in
-//! bitmap font only; the size is fixed at [`WIDTH`] × [`HEIGHT`].
+//! logarithmic with a tick at every budget swept. Lines differ by marker shape and dash
+//! pattern as well as colour. Drawn with `image` and the project's stroke font only; the
+//! size is fixed at [`WIDTH`] × [`HEIGHT`].
 
 use std::path::Path;
 
@@ -158,34 +159,58 @@ struct LegendEntry {
     dashed: bool,
 }
 
-fn dot(img: &mut RgbImage, a: &Area, x: i64, y: i64, r: i64, color: Rgb<u8>) {
+/// Dash patterns (pixels on, pixels off) of dashed lines, by their place in the panel, so
+/// that lines of similar colour still differ in print and for colour-blind readers.
+const DASHES: [(u32, u32); 3] = [(8, 6), (3, 4), (12, 4)];
+
+/// Marker shapes, by the line's place in the panel.
+#[derive(Clone, Copy)]
+enum Marker {
+    Square,
+    Triangle,
+    Diamond,
+    Ring,
+    Cross,
+}
+const MARKERS: [Marker; 5] = [Marker::Square, Marker::Triangle, Marker::Diamond, Marker::Ring, Marker::Cross];
+
+fn marker(img: &mut RgbImage, a: &Area, x: i64, y: i64, shape: Marker, color: Rgb<u8>) {
+    let r = 4i64;
     for dy in -r..=r {
         for dx in -r..=r {
-            if a.contains(x + dx, y + dy) {
+            let on = match shape {
+                Marker::Square => dx.abs() <= 3 && dy.abs() <= 3,
+                // Apex up, base on the bottom row.
+                Marker::Triangle => dy >= -r && 2 * dx.abs() <= dy + r,
+                Marker::Diamond => dx.abs() + dy.abs() <= r,
+                Marker::Ring => (9..=20).contains(&(dx * dx + dy * dy)),
+                Marker::Cross => (dx - dy).abs() <= 1 || (dx + dy).abs() <= 1,
+            };
+            if on && a.contains(x + dx, y + dy) {
                 img.put_pixel((x + dx) as u32, (y + dy) as u32, color);
             }
         }
     }
 }
 
-/// A 2-pixel segment clipped to `a`; `dash` carries the dash phase across segments.
+/// A 2-pixel segment clipped to `a`; `dash` carries the pattern and its phase across segments.
 fn segment(
     img: &mut RgbImage,
     a: &Area,
     (x0, y0): (i64, i64),
     (x1, y1): (i64, i64),
     color: Rgb<u8>,
-    dash: Option<&mut u32>,
+    dash: Option<(&mut u32, (u32, u32))>,
 ) {
     let steps = (x1 - x0).abs().max((y1 - y0).abs()).max(1);
     let mut phase = dash;
     for i in 0..=steps {
         let x = x0 + ((x1 - x0) as f64 * i as f64 / steps as f64).round() as i64;
         let y = y0 + ((y1 - y0) as f64 * i as f64 / steps as f64).round() as i64;
-        let on = match phase.as_deref_mut() {
-            Some(p) => {
-                *p = (*p + 1) % 14;
-                *p < 8
+        let on = match phase.as_mut() {
+            Some((p, (on, off))) => {
+                **p = (**p + 1) % (*on + *off);
+                **p < *on
             }
             None => true,
         };
@@ -199,7 +224,9 @@ fn segment(
     }
 }
 
-fn draw_line(img: &mut RgbImage, a: &Area, x: &XAxis, y: &YAxis, line: &Line) {
+/// The `n`-th line of a panel: dashed lines take the `n`-th dash pattern, markers the
+/// `n`-th shape.
+fn draw_line(img: &mut RgbImage, a: &Area, x: &XAxis, y: &YAxis, line: &Line, n: usize) {
     let pts: Vec<(i64, i64)> = line
         .points
         .iter()
@@ -208,11 +235,11 @@ fn draw_line(img: &mut RgbImage, a: &Area, x: &XAxis, y: &YAxis, line: &Line) {
         .collect();
     let mut phase = 0u32;
     for w in pts.windows(2) {
-        segment(img, a, w[0], w[1], line.color, line.dashed.then_some(&mut phase));
+        segment(img, a, w[0], w[1], line.color, line.dashed.then_some((&mut phase, DASHES[n % DASHES.len()])));
     }
     if line.markers {
         for &(px, py) in &pts {
-            dot(img, a, px, py, 3, line.color);
+            marker(img, a, px, py, MARKERS[n % MARKERS.len()], line.color);
         }
     }
 }
@@ -265,16 +292,21 @@ fn panel(
         img.put_pixel(a.x0 as u32, py as u32, INK);
         img.put_pixel(a.x1 as u32, py as u32, INK);
     }
-    for line in lines {
-        draw_line(img, &a, x, y, line);
+    for (n, line) in lines.iter().enumerate() {
+        draw_line(img, &a, x, y, line, n);
     }
     let all = Area { x0: 0, x1: WIDTH as i64 - 1, y0: 0, y1: HEIGHT as i64 - 1 };
     let lx = a.x1 + 16;
+    // Legend entry n shows line n's dash and marker (the callers list both in one order).
     for (n, e) in legend.iter().enumerate() {
         let ly = a.y0 + 6 + n as i64 * (gh + 10);
         let mut phase = 0u32;
-        segment(img, &all, (lx, ly + gh / 2), (lx + 22, ly + gh / 2), e.color, e.dashed.then_some(&mut phase));
-        draw_text(img, lx + 30, ly, &e.label, SCALE, INK);
+        let dash = e.dashed.then_some((&mut phase, DASHES[n % DASHES.len()]));
+        segment(img, &all, (lx, ly + gh / 2), (lx + 26, ly + gh / 2), e.color, dash);
+        if lines.get(n).is_some_and(|l| l.markers) {
+            marker(img, &all, lx + 13, ly + gh / 2, MARKERS[n % MARKERS.len()], e.color);
+        }
+        draw_text(img, lx + 34, ly, &e.label, SCALE, INK);
     }
 }
 
@@ -317,14 +349,15 @@ pub fn render(p: &SweepPlot) -> RgbImage {
     // y = budget, sampled along the log axis (a curve on this scale).
     let diagonal: Vec<(f64, f64)> =
         (0..=64).map(|i| x.lo * (x.hi / x.lo).powf(i as f64 / 64.0)).map(|b| (b, b)).collect();
+    // In the legend's order, so each entry shows its line's marker and dash.
     let lines = [
-        Line { points: diagonal, color: GREY, dashed: true, markers: false },
         Line { points: series(&p.p50_ms), color: BLUE, dashed: false, markers: true },
-        Line { points: series(&p.p99_ms), color: ORANGE, dashed: false, markers: true },
+        Line { points: series(&p.p99_ms), color: ORANGE, dashed: true, markers: true },
+        Line { points: diagonal, color: GREY, dashed: true, markers: false },
     ];
     let legend = [
         LegendEntry { label: "p50".into(), color: BLUE, dashed: false },
-        LegendEntry { label: "p99".into(), color: ORANGE, dashed: false },
+        LegendEntry { label: "p99".into(), color: ORANGE, dashed: true },
         LegendEntry { label: "budget".into(), color: GREY, dashed: true },
     ];
     panel(&mut img, bottom, &x, &y, "analysis time ms", &p.budgets, &lines, &legend);
@@ -444,6 +477,26 @@ mod tests {
         assert!(count(&img, ORANGE, 34..215) > 200, "second series in the top panel");
         assert!(count(&img, BLUE, 300..481) > 200, "first series in the bottom panel");
         assert_eq!(count(&img, ORANGE, 300..481), 0);
+    }
+
+    #[test]
+    fn lines_differ_by_marker_and_dash_not_only_colour() {
+        // Two series in one colour still draw different shapes at their points.
+        let a = Area { x0: 0, x1: 20, y0: 0, y1: 20 };
+        let shapes: Vec<RgbImage> = MARKERS
+            .iter()
+            .map(|&m| {
+                let mut img = RgbImage::from_pixel(21, 21, WHITE);
+                marker(&mut img, &a, 10, 10, m, BLUE);
+                img
+            })
+            .collect();
+        for i in 0..shapes.len() {
+            for j in 0..i {
+                assert_ne!(shapes[i], shapes[j], "markers {i} and {j} look alike");
+            }
+        }
+        assert_ne!(DASHES[0], DASHES[1]);
     }
 
     #[test]

@@ -59,12 +59,59 @@ pub struct Row {
     pub deadline_miss_pct: Option<f64>,
     /// (analysis, class) pairs whose outcome was `review` (engine rows).
     pub reviews: Option<usize>,
+    /// Outcomes against the labels (engine rows): the share of (frame, class) that carry
+    /// the class and were called `clear`, of those without it called `detected`, and of
+    /// frames with at least one class to `review` (sent to a person), pooled over classes.
+    pub outcomes: Option<OutcomeRates>,
     /// Share of labelled marks whose cell was examined (engine rows, labels with positions).
     pub mark_recall: Option<f64>,
     /// The same per class, in the bundle's order.
     pub mark_recall_per_class: Vec<Option<f64>>,
     /// Mean attention on the cells holding a frame's marks.
     pub mark_attention: Option<f64>,
+}
+
+/// What the three-way outcome achieved on labelled frames.
+#[derive(Clone, Debug, Default, Serialize)]
+pub struct OutcomeRates {
+    /// Called `clear` among (frame, class) that carry the class; None without any.
+    pub miss_rate: Option<f64>,
+    /// Called `detected` among (frame, class) without the class.
+    pub false_alarm_rate: Option<f64>,
+    /// Frames with at least one class called `review`.
+    pub review_share: f64,
+    /// The first two per class, in the bundle's order.
+    pub per_class_miss: Vec<Option<f64>>,
+    pub per_class_false_alarm: Vec<Option<f64>>,
+}
+
+impl OutcomeRates {
+    /// From outcomes and labels, frames × classes.
+    pub fn of(outcomes: &[Vec<Outcome>], truth: &[Vec<bool>]) -> Self {
+        let classes = truth.first().map_or(0, Vec::len);
+        let rate = |hit: usize, n: usize| (n > 0).then(|| hit as f64 / n as f64);
+        let mut per = vec![(0usize, 0usize, 0usize, 0usize); classes]; // (missed, positives, alarms, negatives)
+        for (o, t) in outcomes.iter().zip(truth) {
+            for (c, (o, &t)) in o.iter().zip(t).enumerate() {
+                if t {
+                    per[c].1 += 1;
+                    per[c].0 += (*o == Outcome::Clear) as usize;
+                } else {
+                    per[c].3 += 1;
+                    per[c].2 += (*o == Outcome::Detected) as usize;
+                }
+            }
+        }
+        let sum = |f: fn(&(usize, usize, usize, usize)) -> usize| per.iter().map(f).sum::<usize>();
+        let reviewed = outcomes.iter().filter(|o| o.contains(&Outcome::Review)).count();
+        Self {
+            miss_rate: rate(sum(|p| p.0), sum(|p| p.1)),
+            false_alarm_rate: rate(sum(|p| p.2), sum(|p| p.3)),
+            review_share: reviewed as f64 / outcomes.len().max(1) as f64,
+            per_class_miss: per.iter().map(|p| rate(p.0, p.1)).collect(),
+            per_class_false_alarm: per.iter().map(|p| rate(p.2, p.3)).collect(),
+        }
+    }
 }
 
 /// Collects the analyses of one row.
@@ -78,6 +125,7 @@ pub struct Tally {
     times_ms: Vec<f64>,
     misses: usize,
     reviews: usize,
+    outcomes: Vec<Vec<Outcome>>,
     marks: Option<MarkTally>,
 }
 
@@ -93,6 +141,7 @@ impl Tally {
         self.times_ms.push(r.times_ms.total);
         self.misses += !r.budget_met as usize;
         self.reviews += r.classes.iter().filter(|c| c.outcome == Outcome::Review).count();
+        self.outcomes.push(r.classes.iter().map(|c| c.outcome).collect());
     }
 
     /// Where the analysis `r` looked against the frame's labelled `marks`.
@@ -147,6 +196,7 @@ impl Tally {
             deadline_misses: (row == RowKind::Budget).then_some(self.misses),
             deadline_miss_pct: (row == RowKind::Budget).then(|| 100.0 * self.misses as f64 / n.max(1) as f64),
             reviews: engine.then_some(self.reviews),
+            outcomes: engine.then(|| OutcomeRates::of(&self.outcomes, &self.truth)),
             mark_recall: self.marks.as_ref().and_then(MarkTally::recall),
             mark_recall_per_class: self.marks.as_ref().map(MarkTally::recall_per_class).unwrap_or_default(),
             mark_attention: self.marks.as_ref().and_then(MarkTally::mean_mass),
@@ -192,6 +242,7 @@ mod tests {
             deadline_misses: None,
             deadline_miss_pct: None,
             reviews: None,
+            outcomes: None,
             mark_recall: None,
             mark_recall_per_class: Vec::new(),
             mark_attention: None,

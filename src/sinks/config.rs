@@ -14,6 +14,19 @@ pub enum RecordPolicy {
     NotClear,
 }
 
+/// Which examined patches a frame record lists (the per-patch list is for debugging: with
+/// every patch a record grows from about 1 KB to 30 KB).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum PatchPolicy {
+    /// None; each finding still names its patches in its class entry.
+    None,
+    /// Only the patches that carry a finding, with their attention and weight.
+    Findings,
+    /// Every examined patch.
+    All,
+}
+
 /// When appended lines are forced to stable storage.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
@@ -33,6 +46,8 @@ pub struct LogConfig {
     pub path: PathBuf,
     #[serde(default = "default_records")]
     pub records: RecordPolicy,
+    #[serde(default = "default_patches")]
+    pub patches: PatchPolicy,
     /// Rotate when the file would pass this size.
     #[serde(default = "default_rotate_mb")]
     pub rotate_mb: f64,
@@ -50,6 +65,9 @@ pub struct LogConfig {
 
 fn default_records() -> RecordPolicy {
     RecordPolicy::All
+}
+fn default_patches() -> PatchPolicy {
+    PatchPolicy::None
 }
 fn default_rotate_mb() -> f64 {
     64.0
@@ -78,7 +96,7 @@ pub struct EvidenceConfig {
     pub quota_mb: f64,
     /// Files older than this are removed.
     pub max_age_hours: f64,
-    /// Full-resolution crops saved per frame (highest weight first).
+    /// Enlarged, captioned crops saved per frame, of the patches that carry findings.
     pub crops: usize,
 }
 

@@ -137,6 +137,7 @@ mod tests {
         LogConfig {
             path: dir.join("log.jsonl"),
             records: super::super::config::RecordPolicy::All,
+            patches: super::super::config::PatchPolicy::None,
             rotate_mb,
             keep,
             sync: SyncPolicy::Always,

@@ -6,4 +6,4 @@ pub mod jsonl;
 pub mod record;
 pub mod worker;
 
-pub use config::{EvidenceConfig, LogConfig, RecordPolicy, SinkConfigError, SyncPolicy};
+pub use config::{EvidenceConfig, LogConfig, PatchPolicy, RecordPolicy, SinkConfigError, SyncPolicy};

@@ -7,7 +7,9 @@ use serde::Serialize;
 
 use crate::engine::Report;
 
-pub const SCHEMA: u32 = 1;
+/// 2: two outcome thresholds per class (`clear_below`, `detected_above`) instead of one
+/// `threshold`, the patches that carry each finding, `evidence`, and `patches` optional.
+pub const SCHEMA: u32 = 2;
 
 /// RFC 3339 with milliseconds, UTC (e.g. `2026-12-02T00:51:46.123Z`).
 pub fn rfc3339(t: SystemTime) -> String {
@@ -27,8 +29,19 @@ pub struct FrameRecord<'a> {
     pub captured: String,
     /// Capture to record written, ms.
     pub age_ms: f64,
+    /// The evidence images written for this frame.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub evidence: Option<EvidenceFiles>,
     #[serde(flatten)]
     pub report: &'a Report,
+}
+
+/// Paths of a frame's evidence images, as written (under `[evidence] dir`).
+#[derive(Serialize, Clone, Debug, Default)]
+pub struct EvidenceFiles {
+    pub overview: String,
+    /// One per named finding patch, in the order of the classes and their patches.
+    pub crops: Vec<String>,
 }
 
 #[derive(Serialize)]

@@ -10,7 +10,7 @@ use std::time::{Duration, Instant, SystemTime};
 use crossbeam_channel::{bounded, Receiver, RecvTimeoutError, Sender};
 use image::RgbImage;
 
-use super::config::{EvidenceConfig, LogConfig, RecordPolicy};
+use super::config::{EvidenceConfig, LogConfig, PatchPolicy, RecordPolicy};
 use super::evidence::Evidence;
 use super::jsonl::JsonlLog;
 use super::record::{rfc3339, ErrorRecord, FrameRecord, HealthRecord, Percentiles, SCHEMA};
@@ -44,6 +44,21 @@ struct Worker {
 /// Whether a frame needs a person's look (any class not clear).
 pub fn not_clear(r: &Report) -> bool {
     r.classes.iter().any(|c| c.outcome != Outcome::Clear)
+}
+
+/// Leaves in the report the examined patches the record should list.
+pub fn keep_patches(report: &mut Report, policy: PatchPolicy) {
+    match policy {
+        PatchPolicy::All => {}
+        PatchPolicy::None => report.patches.clear(),
+        PatchPolicy::Findings => {
+            let mut named: Vec<usize> = report.classes.iter().flat_map(|c| c.patches.iter().map(|s| s.patch)).collect();
+            named.sort_unstable();
+            named.dedup();
+            let all = std::mem::take(&mut report.patches);
+            report.patches = named.into_iter().filter_map(|i| all.get(i).cloned()).collect();
+        }
+    }
 }
 
 /// Starts the sinks thread on an opened log; it ends when every sender is gone.
@@ -98,18 +113,22 @@ impl Worker {
 
     fn handle(&mut self, msg: SinkMsg) {
         match msg {
-            SinkMsg::Frame { report, captured, image } => {
+            SinkMsg::Frame { mut report, captured, image } => {
                 self.analysed += 1;
                 self.overruns += u64::from(!report.budget_met);
                 self.window_ms.push(report.times_ms.total);
                 let look = not_clear(&report);
+                let mut evidence = None;
                 if look {
                     if let Some(img) = &image {
                         let stem = format!("{}-{:06}", rfc3339(captured).replace(':', ""), report.seq);
-                        self.evidence.write(&report, img, &stem);
+                        evidence = self.evidence.write(&report, img, &stem);
                     }
                 }
-                let age_ms = SystemTime::now().duration_since(captured).unwrap_or_default().as_secs_f64() * 1000.0;
+                keep_patches(&mut report, self.log_cfg.patches);
+                // Microseconds are plenty for an age.
+                let age_ms =
+                    (SystemTime::now().duration_since(captured).unwrap_or_default().as_secs_f64() * 1e6).round() / 1e3;
                 self.window_age.push(age_ms);
                 if look || self.log_cfg.records == RecordPolicy::All {
                     let rec = FrameRecord {
@@ -118,6 +137,7 @@ impl Worker {
                         time: rfc3339(SystemTime::now()),
                         captured: rfc3339(captured),
                         age_ms,
+                        evidence,
                         report: &report,
                     };
                     self.write(serde_json::to_vec(&rec).expect("record serialises"));

@@ -214,6 +214,7 @@ pub fn train(o: &TrainOptions) -> anyhow::Result<Trained> {
     );
     let manifest = manifest(o, &classes, &thresholds, &description);
     write_bundle(&o.out, &m, baseline.as_ref(), &manifest, &log, &held_out)?;
+    write_calibration(&o.out, &classes, &probs, &truth)?;
     Ok(Trained { sampled: m, baseline, log, loss_before, loss_after, held_out, manifest, seconds })
 }
 
@@ -258,6 +259,24 @@ impl StageFile {
         }
         Ok(())
     }
+}
+
+/// `calibration.json` from the held-out split: Platt maps and the outcome thresholds for
+/// the default targets (the config's own targets are met from the stored scores; a user's
+/// own frames give better ones through `saccade calibrate`).
+fn write_calibration(dir: &Path, classes: &[String], probs: &[Vec<f64>], truth: &[Vec<bool>]) -> anyhow::Result<()> {
+    use crate::bundle::calibration::{Calibration, Targets};
+    let description = format!("saccade train, on its {} held-out frames", probs.len());
+    let cal = Calibration::fit(classes, probs, truth, &Targets::default(), &description);
+    for c in cal.classes.iter().filter(|c| c.clear_below == 0.0 || c.detected_above == 1.0) {
+        log::warn!(
+            "calibration: {:?} has {} held-out frames with it and {} without, too few to back both outcomes at the default targets; run saccade calibrate on more labelled frames",
+            c.name,
+            c.positives.len(),
+            c.negatives.len()
+        );
+    }
+    cal.write(dir).map_err(|e| anyhow::anyhow!("writing {}: {e}", dir.join(crate::bundle::calibration::FILE).display()))
 }
 
 /// Per class, [`best_f1_threshold`] on the held-out probabilities; 0.5 for a class that
