@@ -4,7 +4,7 @@
 
 use std::path::Path;
 
-const FILES: [(&str, &[u8]); 8] = [
+const FILES: [(&str, &[u8]); 9] = [
     ("bundle.toml", include_bytes!("bundle/bundle.toml")),
     ("attention.onnx", include_bytes!("bundle/attention.onnx")),
     ("features.onnx", include_bytes!("bundle/features.onnx")),
@@ -13,6 +13,7 @@ const FILES: [(&str, &[u8]); 8] = [
     ("training.jsonl", include_bytes!("bundle/training.jsonl")),
     ("training.png", include_bytes!("bundle/training.png")),
     ("held-out.json", include_bytes!("bundle/held-out.json")),
+    ("calibration.json", include_bytes!("bundle/calibration.json")),
 ];
 
 /// Where the bundle lives in the source tree, for tests and tools that read it in place.
