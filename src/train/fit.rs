@@ -19,12 +19,13 @@
 //! of the `threads` workers takes its share of a step's frames with its own buffers, and
 //! their gradients are summed.
 //!
-//! Training runs in three stages, each kept only where it improves its validation loss.
-//! The warm-up trains the feature network and head on single patches (multiple-instance
-//! learning with a max over the initial attention's top cells); the attention stage then
-//! teaches the attention network, alone, which cells the warmed-up patch classifier finds
-//! the frame's classes in (thin lines that nearly vanish in the thumbnail are found there
-//! at full resolution); and the end-to-end stage tunes all three through the estimator.
+//! Training runs in three stages, each kept only where it beats the weights it started
+//! from. The warm-up trains the feature network and head on single patches
+//! (multiple-instance learning with a max over the initial attention's top cells); the
+//! attention stage then teaches the attention network, alone, where the warmed-up patch
+//! classifier finds the strongest evidence (thin lines that nearly vanish in the thumbnail
+//! are plain at full resolution), and is kept only if the sampled model's held-out F1
+//! improves; and the end-to-end stage tunes all three through the estimator.
 
 use std::time::Instant;
 

@@ -25,7 +25,7 @@ for b in (1, 4, 16):
     t = next(s["median_ms"] for s in ours["stages"] if s["stage"] == f"feature network only, per patch, batch {b}")
     o = float(re.search(rf"per patch, batch {b}: ([0-9.]+) ms", theirs).group(1))
     print(f"{arch:8} batch {b:2}: tract {t:.4f} ms, onnxruntime {o:.4f} ms, tract/onnxruntime {t / o:.2f}")
-t = next(s["median_ms"] for s in ours["stages"] if s["stage"] == "attention network")
+t = next(s["median_ms"] for s in ours["stages"] if s["stage"].startswith("attention network"))
 o = float(re.search(r"attention network on [0-9x]+: ([0-9.]+) ms", theirs).group(1))
 print(f"{arch:8} attention: tract {t:.3f} ms, onnxruntime {o:.3f} ms, tract/onnxruntime {t / o:.2f}")
 PY
