@@ -120,8 +120,6 @@ const TEMPER: f64 = 1.0;
 const ATTENTION_TOP: usize = 24;
 /// Cells drawn uniformly per frame and step in the attention stage.
 const EXPLORE: usize = 32;
-/// Patches per frame for the probabilities the attention stage reports.
-const VAL_PATCHES: usize = 64;
 
 /// The top cells and `tail` draws from the rest (see the module notes).
 fn select(a: &[f64], top: usize, tail: usize, rng: &mut ChaCha8Rng) -> Selection {
@@ -435,9 +433,8 @@ pub fn validate(
 }
 
 /// Validation as a stage sees it: the warm-up's single-patch objective over the top `k`
-/// cells, the attention stage's objective with the `entry` attention's top `k` cells (and
-/// the sampled model's probabilities), or (end to end) priority sampling of `k` cells as
-/// the engine does it.
+/// cells, the attention stage's objective with the `entry` attention's top `k` cells (no
+/// probabilities), or (end to end) priority sampling of `k` cells as the engine does it.
 #[allow(clippy::too_many_arguments)]
 fn validate_stage(
     m: &Sampled,
@@ -450,13 +447,12 @@ fn validate_stage(
     threads: usize,
 ) -> (Vec<Vec<f64>>, f64) {
     if stage == Stage::Attention {
-        let (probs, _) = validate_stage(m, Stage::EndToEnd, entry, data, frames, VAL_PATCHES, seed, threads);
         let mut workers: Vec<Worker> = (0..threads.max(1)).map(|_| Worker::new(m)).collect();
         let plain = View::plain(&data.norm);
         let losses = parallel(frames, &mut workers, |w, &i| {
             m.attention_step(entry, data, i, &plain, k, seed ^ i as u64, None, w)
         });
-        return (probs, losses.iter().flatten().sum::<f64>() / frames.len().max(1) as f64);
+        return (Vec::new(), losses.iter().flatten().sum::<f64>() / frames.len().max(1) as f64);
     }
     let mut workers: Vec<Worker> = (0..threads.max(1)).map(|_| Worker::new(m)).collect();
     let plain = View::plain(&data.norm);
@@ -735,7 +731,11 @@ pub fn fit_sampled(
             b.set_message(format!("loss {:.4}", total / (b.position() as f64 * o.batch as f64 * classes)));
         }
         b.finish_and_clear();
-        let (probs, val_loss) = validate_stage(m, stage, &entry, data, val, k, seed, o.threads);
+        let (mut probs, val_loss) = validate_stage(m, stage, &entry, data, val, k, seed, o.threads);
+        if stage == Stage::Attention {
+            // Its objective has no frame answer; report the sampled model's.
+            probs = validate(m, data, val, o.val_patches, seed, o.threads).0;
+        }
         let entry = EpochLog {
             model: stage.name(),
             epoch,
