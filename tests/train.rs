@@ -68,6 +68,7 @@ fn options(labels: std::path::PathBuf, out: std::path::PathBuf) -> TrainOptions 
             batch: 3,
             top: 6,
             warmup_top: 8,
+            mine_every: 1,
             tail: 2,
             learning_rate: 1e-2,
             attention_rate: 0.5,

@@ -107,7 +107,9 @@ pub fn run(a: ProbeArgs) -> anyhow::Result<ExitCode> {
         let flat = engine.features(&frame, &g, &list)?;
         let d = m.feature_dim;
         for (j, &(_, k)) in cells.iter().enumerate() {
-            feats.push(flat[j * d..(j + 1) * d].to_vec());
+            // The head reads ln(Psi), so the probe does too: raw evidence spans e^±40 and
+            // would swamp a linear probe's standardisation.
+            feats.push(flat[j * d..(j + 1) * d].iter().map(|v| v.max(f32::MIN_POSITIVE).ln()).collect());
             kinds.push(k);
         }
     }

@@ -49,6 +49,11 @@ pub struct TrainArgs {
     /// Cells of highest initial attention examined per frame and step in the warm-up.
     #[arg(long, default_value_t = 24)]
     pub warmup_top: usize,
+    /// Every this many warm-up epochs, score a wide pool of each frame's cells with the
+    /// patch classifier and add each class's strongest cells to the frame's warm-up cells
+    /// (0: never).
+    #[arg(long, default_value_t = 0)]
+    pub warmup_mine: usize,
     /// Further cells drawn per frame and step from the remaining attention.
     #[arg(long, default_value_t = 8)]
     pub tail: usize,
@@ -144,6 +149,7 @@ pub fn run(a: TrainArgs) -> anyhow::Result<ExitCode> {
             batch: a.batch,
             top: a.top,
             warmup_top: a.warmup_top,
+            mine_every: a.warmup_mine,
             attention_epochs: a.attention_epochs,
             tail: a.tail,
             learning_rate: a.learning_rate,

@@ -73,6 +73,7 @@ pub fn time_step(b: StepBench) -> anyhow::Result<StepTiming> {
         batch: n,
         top: b.top,
         warmup_top: b.top,
+        mine_every: 0,
         tail: b.tail,
         learning_rate: 1e-3,
         attention_rate: 0.5,
