@@ -178,9 +178,11 @@ fn folder_source_end_to_end_with_bad_frames() {
     }
     assert_eq!(kind(&recs, "health").len(), 1, "a final health record at exit");
     assert_eq!(kind(&recs, "health")[0]["errors"], 4);
-    // Used files were moved; the partial one was left alone.
-    let left: Vec<_> = std::fs::read_dir(&inbox).unwrap().map(|e| e.unwrap().file_name()).collect();
-    assert_eq!(left, vec![std::ffi::OsString::from("f900.jpg.part")]);
+    // Used files were moved, none is left claimed; the partial one was left alone.
+    let mut left: Vec<_> = std::fs::read_dir(&inbox).unwrap().map(|e| e.unwrap().file_name()).collect();
+    left.sort();
+    assert_eq!(left, [".saccade-claimed", "f900.jpg.part"].map(std::ffi::OsString::from));
+    assert_eq!(std::fs::read_dir(inbox.join(".saccade-claimed")).unwrap().count(), 0);
     assert_eq!(std::fs::read_dir(s.path("done")).unwrap().count(), 10);
 
     // Compact records: no per-patch list by default; findings name their patches; the
