@@ -111,11 +111,12 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     notify.stopping();
     source_stop.store(true, Ordering::Relaxed);
     drop(running.frames);
-    running.thread.join().ok();
+    let source_ended = running.thread.join();
     drop(sinks);
     sinks_thread.join().map_err(|_| anyhow::anyhow!("the sinks thread panicked"))?;
     log::info!("stopped after {analysed} frames; log flushed");
-    Ok(())
+    // A source that died is a failure the service manager should see (and restart).
+    source_ended.map_err(|_| anyhow::anyhow!("the source thread panicked"))
 }
 
 /// Loads the bundle and builds the engine with the config's settings, mask and frame

@@ -10,6 +10,7 @@ pub mod feed;
 pub mod files;
 pub mod folder;
 pub mod generated;
+mod jpeg_end;
 pub mod yuv;
 
 use std::collections::HashSet;
