@@ -178,7 +178,7 @@ pub enum ConfigProblem {
 
 impl ConfigProblem {
     /// The dotted key (`log.path`) the problem is about, when it is about one.
-    fn key(&self) -> Option<String> {
+    pub fn key(&self) -> Option<String> {
         Some(match self {
             Self::Read(_) | Self::Parse(_) => return None,
             Self::NoBundle(_) => "bundle".into(),

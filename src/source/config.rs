@@ -163,6 +163,8 @@ pub enum SourceConfigError {
     MoveTo(FolderProblem),
     #[error("paths: expected at least one file or glob pattern")]
     NoPaths,
+    #[error("rate_fps = {}: expected 0 (as fast as analysis goes) or 0.001 to 1000", shown(*.0))]
+    Rate(f64),
 }
 
 impl SourceConfigError {
@@ -176,6 +178,7 @@ impl SourceConfigError {
             Self::MoveWithoutFolder => "after",
             Self::MoveTo(_) => "move_to",
             Self::NoPaths => "paths",
+            Self::Rate(_) => "rate_fps",
         }
     }
 }
@@ -211,9 +214,12 @@ impl SourceConfig {
                     _ => {}
                 }
             }
-            Self::Files { paths, .. } => {
+            Self::Files { paths, rate_fps, .. } => {
                 if paths.is_empty() {
                     return Err(SourceConfigError::NoPaths);
+                }
+                if !(*rate_fps == 0.0 || (0.001..=1000.0).contains(rate_fps)) {
+                    return Err(SourceConfigError::Rate(*rate_fps));
                 }
             }
             Self::Scene { .. } => {}
@@ -234,7 +240,7 @@ impl SourceConfig {
             Self::Folder { stable_ms, poll_ms, .. } => {
                 vec![("stable_ms", *stable_ms as f64, 1.0, 3_600_000.0), ("poll_ms", *poll_ms as f64, 1.0, 60_000.0)]
             }
-            Self::Files { rate_fps, .. } => vec![("rate_fps", *rate_fps, 0.0, 1000.0)],
+            Self::Files { .. } => vec![],
             Self::Scene { width, height, fps, .. } => vec![
                 ("width", *width as f64, 64.0, 8192.0),
                 ("height", *height as f64, 64.0, 8192.0),
