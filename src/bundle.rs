@@ -18,6 +18,10 @@ pub const FORMAT: u32 = 1;
 /// bits (255 × 257 < 2¹⁶).
 pub const MAX_THUMBNAIL_FACTOR: u32 = 257;
 
+/// Prefix of the ONNX metadata keys that record the geometry a network was trained for
+/// (`saccade.thumbnail_factor`, `saccade.cell_stride`, `saccade.patch_size`).
+pub const GEOMETRY_PREFIX: &str = "saccade.";
+
 /// How the head's logits become probabilities.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
@@ -102,12 +106,37 @@ pub enum ManifestProblem {
     ThresholdCount { classes: usize, found: usize },
     #[error("thresholds: {0} is outside [0, 1]")]
     ThresholdRange(f64),
-    #[error("{0}: expected a positive integer, found 0")]
-    Zero(&'static str),
-    #[error("thumbnail_factor = {0}: at most {MAX_THUMBNAIL_FACTOR} is supported")]
-    ThumbnailFactor(u32),
-    #[error("normalization.std: {0} must be positive")]
+    #[error("classes: {0:?} is named twice; each class needs its own name")]
+    DuplicateClass(String),
+    #[error("{field} = {value}: expected {min} to {max}")]
+    Range { field: &'static str, value: u64, min: u64, max: u64 },
+    #[error("normalization.mean: {0} must be a finite number")]
+    Mean(f32),
+    #[error("normalization.std: {0} must be a positive finite number")]
     Std(f32),
+}
+
+/// The accepted range of each integer in the manifest. A patch of 512² pixels is far
+/// above any network this engine is meant for, and keeps a batch's tensor under 1 GB.
+const INTEGER_RANGES: [(&str, u64, u64); 4] = [
+    ("thumbnail_factor", 1, MAX_THUMBNAIL_FACTOR as u64),
+    ("cell_stride", 1, 256),
+    ("patch_size", 1, 512),
+    ("feature_dim", 1, 65_536),
+];
+
+impl ManifestProblem {
+    /// The manifest key the problem is about.
+    pub fn field(&self) -> &'static str {
+        match self {
+            Self::Format(_) => "format",
+            Self::NoClasses | Self::SoftmaxNeedsTwo | Self::DuplicateClass(_) => "classes",
+            Self::ThresholdCount { .. } | Self::ThresholdRange(_) => "thresholds",
+            Self::Range { field, .. } => field,
+            Self::Mean(_) => "normalization.mean",
+            Self::Std(_) => "normalization.std",
+        }
+    }
 }
 
 impl Manifest {
@@ -143,22 +172,35 @@ impl Manifest {
         if let Some(t) = self.thresholds.iter().find(|t| !(0.0..=1.0).contains(*t)) {
             return Err(ManifestProblem::ThresholdRange(*t));
         }
-        for (key, v) in [
-            ("thumbnail_factor", self.thumbnail_factor as usize),
-            ("cell_stride", self.cell_stride as usize),
-            ("patch_size", self.patch_size as usize),
-            ("feature_dim", self.feature_dim),
-        ] {
-            if v == 0 {
-                return Err(ManifestProblem::Zero(key));
+        for (n, name) in self.classes.iter().enumerate() {
+            if self.classes[..n].contains(name) {
+                return Err(ManifestProblem::DuplicateClass(name.clone()));
             }
         }
-        if self.thumbnail_factor > MAX_THUMBNAIL_FACTOR {
-            return Err(ManifestProblem::ThumbnailFactor(self.thumbnail_factor));
+        let values =
+            [self.thumbnail_factor as u64, self.cell_stride as u64, self.patch_size as u64, self.feature_dim as u64];
+        for ((field, min, max), value) in INTEGER_RANGES.into_iter().zip(values) {
+            if !(min..=max).contains(&value) {
+                return Err(ManifestProblem::Range { field, value, min, max });
+            }
         }
-        if let Some(s) = self.normalization.std.iter().find(|s| s.is_nan() || **s <= 0.0) {
+        if let Some(m) = self.normalization.mean.iter().find(|m| !m.is_finite()) {
+            return Err(ManifestProblem::Mean(*m));
+        }
+        if let Some(s) = self.normalization.std.iter().find(|s| !(s.is_finite() && **s > 0.0)) {
             return Err(ManifestProblem::Std(*s));
         }
         Ok(())
+    }
+
+    /// The training geometry as ONNX metadata entries: the trainer records them in each
+    /// network it writes, and loading compares them with the manifest.
+    pub fn geometry(&self) -> [(String, String); 3] {
+        [
+            ("thumbnail_factor", self.thumbnail_factor),
+            ("cell_stride", self.cell_stride),
+            ("patch_size", self.patch_size),
+        ]
+        .map(|(k, v)| (format!("{GEOMETRY_PREFIX}{k}"), v.to_string()))
     }
 }

@@ -38,6 +38,9 @@ pub struct Config {
     origin: Origin,
 }
 
+/// Largest accepted `max_pixels`: a gigapixel frame is 3 GB as RGB8.
+pub const MAX_PIXELS_LIMIT: u64 = 1_000_000_000;
+
 fn default_max_pixels() -> u64 {
     DEFAULT_MAX_PIXELS
 }
@@ -159,8 +162,8 @@ pub enum ConfigProblem {
     Parse(String),
     #[error("bundle = {0:?}: no {MANIFEST} there")]
     NoBundle(PathBuf),
-    #[error("max_pixels = 0: expected a positive pixel count")]
-    MaxPixels,
+    #[error("max_pixels = {0}: expected 1 to {MAX_PIXELS_LIMIT} pixels")]
+    MaxPixels(u64),
     #[error("[source] {0}")]
     Source(#[from] SourceConfigError),
     #[error("[engine] {0}")]
@@ -175,11 +178,11 @@ pub enum ConfigProblem {
 
 impl ConfigProblem {
     /// The dotted key (`log.path`) the problem is about, when it is about one.
-    fn key(&self) -> Option<String> {
+    pub fn key(&self) -> Option<String> {
         Some(match self {
             Self::Read(_) | Self::Parse(_) => return None,
             Self::NoBundle(_) => "bundle".into(),
-            Self::MaxPixels => "max_pixels".into(),
+            Self::MaxPixels(_) => "max_pixels".into(),
             Self::Source(e) => format!("source.{}", e.field()),
             Self::Engine(e) => format!("engine.{}", e.field()),
             Self::Mask(e) => format!("mask.{}", e.field()),
@@ -269,8 +272,8 @@ impl Config {
         if !self.bundle.join(MANIFEST).is_file() {
             return Err(ConfigProblem::NoBundle(self.bundle.clone()));
         }
-        if self.max_pixels == 0 {
-            return Err(ConfigProblem::MaxPixels);
+        if !(1..=MAX_PIXELS_LIMIT).contains(&self.max_pixels) {
+            return Err(ConfigProblem::MaxPixels(self.max_pixels));
         }
         self.source.check()?;
         self.engine.settings.check(None)?;

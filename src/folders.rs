@@ -10,6 +10,8 @@ use rustix::fs::Access;
 pub enum FolderProblem {
     #[error("{} is not a folder", .0.display())]
     NotAFolder(PathBuf),
+    #[error("{} is a folder, expected a file name", .0.display())]
+    IsAFolder(PathBuf),
     #[error("{} is not writable by this user", .0.display())]
     NotWritable(PathBuf),
     #[error("{} cannot be created: {} is not a folder", dir.display(), blocker.display())]

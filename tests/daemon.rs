@@ -8,6 +8,7 @@ use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
+use image::RgbImage;
 use saccade::config::Config;
 use saccade::demo::designed::DesignedParams;
 use saccade::demo::scene;
@@ -178,9 +179,11 @@ fn folder_source_end_to_end_with_bad_frames() {
     }
     assert_eq!(kind(&recs, "health").len(), 1, "a final health record at exit");
     assert_eq!(kind(&recs, "health")[0]["errors"], 4);
-    // Used files were moved; the partial one was left alone.
-    let left: Vec<_> = std::fs::read_dir(&inbox).unwrap().map(|e| e.unwrap().file_name()).collect();
-    assert_eq!(left, vec![std::ffi::OsString::from("f900.jpg.part")]);
+    // Used files were moved, none is left claimed; the partial one was left alone.
+    let mut left: Vec<_> = std::fs::read_dir(&inbox).unwrap().map(|e| e.unwrap().file_name()).collect();
+    left.sort();
+    assert_eq!(left, [".saccade-claimed", "f900.jpg.part"].map(std::ffi::OsString::from));
+    assert_eq!(std::fs::read_dir(inbox.join(".saccade-claimed")).unwrap().count(), 0);
     assert_eq!(std::fs::read_dir(s.path("done")).unwrap().count(), 10);
 
     // Compact records: no per-patch list by default; findings name their patches; the
@@ -514,4 +517,272 @@ fn shipped_configs_parse_and_check_prints_the_effective_config() {
         (100.0, 256, 64.0)
     );
     assert!(String::from_utf8_lossy(&out.stderr).contains("first frame"));
+}
+
+/// Files in `dir`, hidden ones (the claimed folder) left out.
+fn visible(dir: &Path) -> Vec<String> {
+    let mut v: Vec<String> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| !n.starts_with('.'))
+        .collect();
+    v.sort();
+    v
+}
+
+fn claimed(inbox: &Path) -> usize {
+    std::fs::read_dir(inbox.join(".saccade-claimed")).map(|d| d.count()).unwrap_or(0)
+}
+
+/// How many frame or error records name each file.
+fn records_per_file(records: &[Value]) -> std::collections::BTreeMap<String, usize> {
+    let mut n = std::collections::BTreeMap::new();
+    for r in records.iter().filter(|r| r["record"] == "frame" || r["record"] == "error") {
+        let name = Path::new(r["origin"].as_str().unwrap()).file_name().unwrap().to_string_lossy().into_owned();
+        *n.entry(name).or_insert(0) += 1;
+    }
+    n
+}
+
+fn folder_source(s: &Setup, after: &str) -> String {
+    let inbox = s.path("inbox");
+    std::fs::create_dir_all(&inbox).unwrap();
+    format!(
+        "kind = \"folder\"\npath = {:?}\nafter = \"{after}\"\nmove_to = {:?}\nstable_ms = 1\npoll_ms = 20",
+        inbox.display().to_string(),
+        s.path("done").display().to_string()
+    )
+}
+
+#[test]
+fn a_too_small_frame_is_an_error_record_and_the_daemon_goes_on() {
+    let s = Setup::new();
+    let source = folder_source(&s, "delete");
+    let cfg = s.config(&source, "budget_ms = 50", "sync = \"never\"");
+    let inbox = s.path("inbox");
+    let mut child = s.spawn(&cfg, &[]);
+    // Each side at or below 8 pixels made the attention network's pooling panic.
+    for (name, w, h) in [("dot.png", 1, 1), ("tiny.png", 8, 8), ("strip.png", 900, 6)] {
+        RgbImage::from_pixel(w, h, image::Rgb([90, 90, 90])).save(s.path(name)).unwrap();
+        std::fs::rename(s.path(name), inbox.join(name)).unwrap();
+    }
+    for p in s.frames("staged", 2, 320, 240) {
+        std::fs::rename(&p, inbox.join(p.file_name().unwrap())).unwrap();
+    }
+    wait_for(60, "five records", || records_per_file(&s.records()).len() == 5);
+    wait_for(30, "the inbox to empty", || visible(&inbox).is_empty() && claimed(&inbox) == 0);
+    assert!(stop(&mut child).success(), "{}", s.stderr());
+    let recs = s.records();
+    let errors = kind(&recs, "error");
+    assert_eq!(errors.len(), 3, "{errors:?}");
+    assert!(errors.iter().all(|e| e["error"].as_str().unwrap().contains("needs at least 25×25")), "{errors:?}");
+    assert_eq!(kind(&recs, "frame").len(), 2);
+    assert!(records_per_file(&recs).values().all(|&n| n == 1));
+    assert!(!s.stderr().contains("panicked"), "{}", s.stderr());
+}
+
+/// Kills the daemon with SIGKILL at arbitrary points while it works through a burst of
+/// files, restarting it each time: at the end every file has exactly one record.
+fn kill_9_keeps_one_record_per_file(after: &str) {
+    let s = Setup::new();
+    let source = folder_source(&s, after);
+    let cfg = s.config(&source, "budget_ms = 20\nmax_patches = 8", "sync = \"never\"");
+    let inbox = s.path("inbox");
+    let names: Vec<String> = s
+        .frames("staged", 24, 320, 240)
+        .into_iter()
+        .map(|p| {
+            let name = p.file_name().unwrap().to_string_lossy().into_owned();
+            std::fs::rename(&p, inbox.join(&name)).unwrap();
+            name
+        })
+        .collect();
+    for round in 0..6u64 {
+        let before = records_per_file(&s.records()).len();
+        if before == names.len() {
+            break;
+        }
+        let mut child = s.spawn(&cfg, &[]);
+        wait_for(60, "progress", || records_per_file(&s.records()).len() > before);
+        std::thread::sleep(Duration::from_millis(37 * round));
+        child.kill().unwrap();
+        child.wait().unwrap();
+        let counts = records_per_file(&s.records());
+        assert!(counts.values().all(|&n| n == 1), "round {round}: {counts:?}");
+    }
+    let mut child = s.spawn(&cfg, &[]);
+    // Up (signal handlers in place) before the stop.
+    wait_for(60, "the daemon up", || s.stderr().contains("source up"));
+    wait_for(60, "every file", || visible(&inbox).is_empty() && claimed(&inbox) == 0);
+    assert!(stop(&mut child).success(), "{}", s.stderr());
+    let counts = records_per_file(&s.records());
+    assert_eq!(counts.keys().cloned().collect::<Vec<_>>(), names, "every file recorded");
+    assert!(counts.values().all(|&n| n == 1), "{counts:?}");
+    match after {
+        "move" => assert_eq!(visible(&s.path("done")), names),
+        _ => assert!(!s.path("done").exists() || visible(&s.path("done")).is_empty()),
+    }
+    let v = validate(&s.log());
+    assert_eq!(v["problems"], Value::Array(vec![]), "{v}");
+}
+
+#[test]
+fn kill_9_under_delete_leaves_every_file_with_one_record() {
+    kill_9_keeps_one_record_per_file("delete");
+}
+
+#[test]
+fn kill_9_under_move_leaves_every_file_with_one_record() {
+    kill_9_keeps_one_record_per_file("move");
+}
+
+#[test]
+fn keep_remembers_what_was_recorded_across_restarts() {
+    let s = Setup::new();
+    let source = folder_source(&s, "keep");
+    let cfg = s.config(&source, "budget_ms = 20", "");
+    let inbox = s.path("inbox");
+    for p in s.frames("staged", 3, 320, 240) {
+        std::fs::rename(&p, inbox.join(p.file_name().unwrap())).unwrap();
+    }
+    for round in 0..2 {
+        let mut child = s.spawn(&cfg, &[]);
+        wait_for(60, "three records", || records_per_file(&s.records()).len() == 3);
+        if round == 1 {
+            // A new file is still taken after the restart.
+            s.frames("later", 1, 320, 240);
+            std::fs::rename(s.path("later/f000.jpg"), inbox.join("new.jpg")).unwrap();
+            wait_for(60, "the new file", || records_per_file(&s.records()).len() == 4);
+        }
+        wait_for(30, "files put back", || visible(&inbox).len() == 3 + round && claimed(&inbox) == 1);
+        assert!(stop(&mut child).success(), "{}", s.stderr());
+    }
+    let counts = records_per_file(&s.records());
+    assert!(counts.values().all(|&n| n == 1), "{counts:?}");
+}
+
+#[test]
+fn a_full_disk_keeps_whole_lines_bounds_the_backlog_and_reports_it() {
+    use std::io::Read;
+    use std::os::unix::process::CommandExt;
+    let s = Setup::new();
+    s.frames("frames", 2, 320, 240);
+    let source = format!(
+        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 50\nrepeat = true",
+        s.path("frames/*.jpg").display().to_string()
+    );
+    let cfg = s.config(&source, "budget_ms = 20", "health_interval_s = 0.2\nbacklog_mb = 0.004\nsync = \"always\"");
+    // The log's file system is simulated full by a file size limit (RLIMIT_FSIZE); writes
+    // past it fail part-way, as on a full disk. SIGXFSZ ignored, so they fail with EFBIG.
+    const LIMIT: u64 = 20_000;
+    let mut cmd = Command::new(BIN);
+    cmd.args(["run", "--config", cfg.to_str().unwrap()]).stdout(Stdio::null()).stderr(Stdio::piped());
+    unsafe {
+        cmd.pre_exec(|| {
+            libc::signal(libc::SIGXFSZ, libc::SIG_IGN);
+            let lim = libc::rlimit { rlim_cur: LIMIT, rlim_max: libc::RLIM_INFINITY };
+            if libc::setrlimit(libc::RLIMIT_FSIZE, &lim) != 0 {
+                return Err(std::io::Error::last_os_error());
+            }
+            Ok(())
+        });
+    }
+    let mut child = cmd.spawn().unwrap();
+    let stderr = std::sync::Arc::new(std::sync::Mutex::new(String::new()));
+    let mut pipe = child.stderr.take().unwrap();
+    let sink = stderr.clone();
+    let reader = std::thread::spawn(move || {
+        let mut buf = [0u8; 4096];
+        while let Ok(n) = pipe.read(&mut buf) {
+            if n == 0 {
+                break;
+            }
+            sink.lock().unwrap().push_str(&String::from_utf8_lossy(&buf[..n]));
+        }
+    });
+    let said = |what: &str| stderr.lock().unwrap().contains(what);
+    wait_for(120, "records shed", || said("records shed so far"));
+    let text = std::fs::read(s.log()).unwrap();
+    assert!(text.len() as u64 <= LIMIT && text.ends_with(b"\n"), "{} bytes", text.len());
+    // Space again: the backlog drains and the next health record tells what was shed.
+    let unlimited = libc::rlimit { rlim_cur: libc::RLIM_INFINITY, rlim_max: libc::RLIM_INFINITY };
+    assert_eq!(unsafe { libc::prlimit(child.id() as i32, libc::RLIMIT_FSIZE, &unlimited, std::ptr::null_mut()) }, 0);
+    wait_for(60, "a health record after the full disk", || {
+        kind(&s.records(), "health").iter().any(|h| h["shed"].as_u64().unwrap_or(0) > 0)
+    });
+    assert!(stop(&mut child).success());
+    reader.join().unwrap();
+    let text = std::fs::read_to_string(s.log()).unwrap();
+    assert!(text.ends_with('\n'));
+    for (n, line) in text.lines().enumerate() {
+        assert!(serde_json::from_str::<Value>(line).is_ok(), "line {}: {line:?}", n + 1);
+    }
+    let health = kind(&s.records(), "health");
+    let h = health.iter().find(|h| h["shed"].as_u64().unwrap() > 0).unwrap();
+    // The backlog never held more than its bound.
+    assert!(h["backlog_bytes"].as_u64().unwrap() <= 4 * 1024 + 4096, "{h}");
+    let v = validate(&s.log());
+    assert_eq!(v["problems"], Value::Array(vec![]), "{v}");
+}
+
+/// Values that passed `check` and then panicked at start, at the first frame or in the
+/// writer thread: each is refused by check and run, with the file, field and range.
+#[test]
+fn out_of_range_values_are_refused_by_check_run_and_reload() {
+    let s = Setup::new();
+    s.frames("frames", 2, 320, 240);
+    let files = format!(
+        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 20\nrepeat = true",
+        s.path("frames/*.jpg").display().to_string()
+    );
+    let evidence =
+        |extra: &str| format!("\n[evidence]\nenabled = true\ndir = {:?}\n{extra}", s.path("ev").display().to_string());
+    let cases: Vec<(String, String, String, &str)> = vec![
+        (files.clone(), "budget_ms = 1e300".into(), String::new(), "budget_ms = 1e300"),
+        (files.clone(), "samples = 100000000".into(), String::new(), "samples = 100000000"),
+        (files.clone(), String::new(), "sync_interval_s = inf".into(), "sync_interval_s = inf"),
+        (files.clone(), String::new(), "health_interval_s = 1e300".into(), "health_interval_s = 1e300"),
+        (files.clone(), String::new(), "backlog_mb = -1".into(), "backlog_mb = -1"),
+        (files.clone(), String::new(), evidence("max_age_hours = inf"), "max_age_hours = inf"),
+        ("kind = \"scene\"\nfps = 1e-300".into(), String::new(), String::new(), "fps = 1e-300"),
+    ];
+    for (source, engine, log, wanted) in &cases {
+        let cfg = s.config(source, engine, log);
+        for cmd in ["check", "run"] {
+            let out = Command::new(BIN).args([cmd, "--config", cfg.to_str().unwrap()]).output().unwrap();
+            let err = String::from_utf8_lossy(&out.stderr);
+            assert_eq!(out.status.code(), Some(2), "{cmd} {wanted}: {err}");
+            assert!(err.contains("saccade.toml:") && err.contains(wanted) && err.contains("expected"), "{cmd}: {err}");
+        }
+    }
+    // check refuses what run would: a mask that is not an image, a log path that is a
+    // folder. [evidence] with only enabled and dir takes the other keys' defaults.
+    std::fs::write(s.path("mask.png"), b"not an image").unwrap();
+    let cfg = s.config(&files, "", &format!("\n[mask]\nimage = {:?}", s.path("mask.png").display().to_string()));
+    let out = Command::new(BIN).args(["check", "--config", cfg.to_str().unwrap()]).output().unwrap();
+    assert!(!out.status.success() && String::from_utf8_lossy(&out.stderr).contains("mask"));
+    std::fs::create_dir_all(s.log()).unwrap();
+    let cfg = s.config(&files, "", &evidence(""));
+    let out = Command::new(BIN).args(["check", "--config", cfg.to_str().unwrap()]).output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(!out.status.success() && err.contains("[log] path") && err.contains("is a folder"), "{err}");
+    std::fs::remove_dir(s.log()).unwrap();
+    let cfg = s.config(&files, "", &evidence(""));
+    assert!(Config::load(&cfg).is_ok());
+
+    // Sent by SIGHUP: rejected and logged, and the running configuration stays.
+    let cfg = s.config(&files, "budget_ms = 40", "");
+    let mut child = s.spawn(&cfg, &[]);
+    wait_for(60, "records", || kind(&s.records(), "frame").len() >= 2);
+    for (n, (_, engine, log, wanted)) in cases.iter().filter(|c| c.0 == files).enumerate() {
+        s.config(&files, engine, log);
+        signal(&child, libc::SIGHUP);
+        wait_for(30, wanted, || s.stderr().matches("reload rejected").count() > n);
+        assert!(s.stderr().contains(wanted), "{}", s.stderr());
+    }
+    let before = kind(&s.records(), "frame").len();
+    wait_for(60, "records after the rejections", || kind(&s.records(), "frame").len() > before + 2);
+    assert!(stop(&mut child).success(), "{}", s.stderr());
+    assert!(kind(&s.records(), "frame").iter().all(|r| r["budget_ms"] == 40.0));
+    assert!(!s.stderr().contains("panicked"), "{}", s.stderr());
 }

@@ -203,6 +203,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
         captured: rfc3339(frame.captured),
         age_ms: report.times_ms.total,
         evidence: None,
+        claim: None,
         report: &report,
     };
     for (sync, label) in [(SyncPolicy::Interval, "sync = interval"), (SyncPolicy::Always, "sync = always")] {
@@ -216,6 +217,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
             sync,
             sync_interval_s: 5.0,
             health_interval_s: 60.0,
+            backlog_mb: 16.0,
         };
         let mut log = JsonlLog::open(&cfg).with_context(|| format!("opening {}", path.display()))?;
         stages.push(measure(&format!("log write: frame record, serialise + append ({label})"), n, || {

@@ -1,5 +1,6 @@
 //! `saccade run` and `saccade check`.
 
+use std::collections::HashSet;
 use std::path::PathBuf;
 use std::process::ExitCode;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -8,7 +9,7 @@ use std::time::Duration;
 
 use clap::Args;
 use saccade::config::Config;
-use saccade::engine::Bundle;
+use saccade::service::daemon::build_engine;
 use saccade::source::{self, SourceConfig, SourceCounters};
 
 #[derive(Args)]
@@ -28,8 +29,8 @@ pub fn run(args: ConfigArgs) -> anyhow::Result<ExitCode> {
 /// Nothing is written to disk: folders that `run` would create are only named.
 pub fn check(args: ConfigArgs) -> anyhow::Result<ExitCode> {
     let cfg = Config::load(&args.config)?;
-    let bundle = Bundle::load(&cfg.bundle, &cfg.engine.settings.batch_sizes())?;
-    cfg.check_classes(bundle.manifest.classes.len())?;
+    let engine = build_engine(&cfg)?;
+    let bundle = engine.bundle();
     let opened = match &cfg.source {
         // A watched folder may rightly be empty; listing it is the check. Its thread is not
         // started: it would take (move or delete) the files it finds.
@@ -58,13 +59,14 @@ pub fn check(args: ConfigArgs) -> anyhow::Result<ExitCode> {
 /// Starts the source, waits for its first frame and stops it.
 fn first_frame(cfg: &Config, args: &ConfigArgs) -> anyhow::Result<String> {
     let stop = Arc::new(AtomicBool::new(false));
-    let running = source::start(&cfg.source, cfg.max_pixels, Arc::new(SourceCounters::default()), stop.clone())
+    let counters = Arc::new(SourceCounters::default());
+    let running = source::start(&cfg.source, cfg.max_pixels, counters, stop.clone(), &HashSet::new())
         .map_err(|e| anyhow::anyhow!("{}: {e}", args.config.display()))?;
     let first = running.frames.recv_timeout(Duration::from_secs(30));
     stop.store(true, Ordering::Relaxed);
     drop(running.frames);
     running.thread.join().ok();
-    match first {
+    match first.map(|incoming| incoming.item) {
         Ok(Ok(f)) => Ok(format!("first frame {} ({}×{})", f.origin, f.width(), f.height())),
         Ok(Err(e)) => anyhow::bail!("{}: the source's first frame is bad: {}", args.config.display(), e.message),
         Err(_) => anyhow::bail!("{}: the source gave no frame within 30 s", args.config.display()),

@@ -38,9 +38,17 @@ fn contrast_kernel(k: usize) -> Vec<f32> {
     w
 }
 
+/// Records the geometry the weights were designed for, as the trainer records its own.
+fn record_geometry(g: &mut GraphWriter, p: &DesignedParams) {
+    for (key, value) in manifest(p).geometry() {
+        g.metadata(&key, &value);
+    }
+}
+
 /// Attention: capped |local contrast| of the grey thumbnail, max-pooled to cells, scaled.
 pub fn attention_onnx(p: &DesignedParams) -> Vec<u8> {
     let mut g = GraphWriter::new("attention");
+    record_geometry(&mut g, p);
     let x = g.input("thumbnail", &[Dim::Fixed(1), Dim::Fixed(3), Dim::Symbol("height"), Dim::Symbol("width")]);
     let grey = g.conv(&x, &GREY, &[0.0], 3, 1, 1, 0);
     // Edge padding: zero padding would make the frame border look like a flaw.
@@ -61,6 +69,7 @@ pub fn attention_onnx(p: &DesignedParams) -> Vec<u8> {
 /// contrasts measured against the patch mean.
 pub fn features_onnx(p: &DesignedParams) -> Vec<u8> {
     let mut g = GraphWriter::new("features");
+    record_geometry(&mut g, p);
     let ps = p.patch_size as i64;
     let x = g.input("patches", &[Dim::Symbol("batch"), Dim::Fixed(3), Dim::Fixed(ps), Dim::Fixed(ps)]);
     let grey = g.conv(&x, &GREY, &[0.0], 3, 1, 1, 0);

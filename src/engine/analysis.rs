@@ -12,6 +12,7 @@ use tract_onnx::prelude::Tensor;
 use super::budget::{self, CostModel, Limits};
 use super::estimator::{CellOrder, EstimatorKind, Weights};
 use super::frame::Frame;
+use super::isolate;
 use super::mask::{self, Mask, MaskError};
 use super::networks::{f32_slice, zeros, Bundle, BundleError};
 use super::patches::{Geometry, Normalizer};
@@ -28,6 +29,12 @@ pub enum EngineError {
     Mask(#[from] MaskError),
     #[error("settings: {0}")]
     Settings(#[from] SettingsError),
+    #[error("the frame is {width}×{height} pixels; this bundle needs at least {min}×{min}: its attention network takes thumbnails of {thumbnail}×{thumbnail} and more (thumbnail_factor = {factor})")]
+    TooSmall { width: u32, height: u32, min: u32, thumbnail: u32, factor: u32 },
+    /// A defect of ours or of a network that the checks did not catch; the frame is
+    /// skipped and the daemon goes on.
+    #[error("internal error while analysing the frame: {0}")]
+    Panicked(String),
 }
 
 /// The thumbnail of a frame and the attention network's input made from it.
@@ -129,8 +136,20 @@ impl Engine {
         Ok(())
     }
 
-    /// Analyses one frame within the budget, drawing randomness from `seed`.
+    /// Analyses one frame within the budget, drawing randomness from `seed`. A panic
+    /// inside is contained and returned as [`EngineError::Panicked`]: the engine's cost
+    /// model and settings change only when a frame completes, so it stays usable.
     pub fn analyze(&mut self, frame: &Frame, seed: u64) -> Result<Report, EngineError> {
+        let (b, min) = (&self.bundle, self.bundle.min_frame_side());
+        if frame.width() < min || frame.height() < min {
+            let (width, height, thumbnail, factor) =
+                (frame.width(), frame.height(), b.min_thumbnail, b.manifest.thumbnail_factor);
+            return Err(EngineError::TooSmall { width, height, min, thumbnail, factor });
+        }
+        isolate::run(|| self.analyze_frame(frame, seed)).unwrap_or_else(|message| Err(EngineError::Panicked(message)))
+    }
+
+    fn analyze_frame(&mut self, frame: &Frame, seed: u64) -> Result<Report, EngineError> {
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
         let mut times = StageTimes::default();
         let (fw, fh) = (frame.width(), frame.height());

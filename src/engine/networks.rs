@@ -15,11 +15,12 @@ use image::RgbImage;
 use tract_onnx::pb;
 use tract_onnx::prelude::*;
 
+use super::isolate;
 use super::patches::Normalizer;
 use super::thumbnail::area_reduce;
 use super::uncertainty::probabilities;
 use crate::bundle::calibration::{Calibration, CalibrationError};
-use crate::bundle::{Manifest, ManifestError, NetworkRef, MANIFEST};
+use crate::bundle::{Manifest, ManifestError, NetworkRef, GEOMETRY_PREFIX, MANIFEST};
 
 /// Why a bundle cannot be loaded or one of its networks cannot run.
 #[derive(Debug, thiserror::Error)]
@@ -56,6 +57,12 @@ pub enum NetworkProblem {
     Plan { shape: Vec<usize>, message: String },
     #[error("inference failed on input shape {shape:?}: {message}")]
     Inference { shape: Vec<usize>, message: String },
+    #[error("the input declares patches of side {found}, but bundle.toml says patch_size = {expected}")]
+    PatchSide { found: i64, expected: i64 },
+    #[error("the file records {key} = {recorded} (the geometry it was trained for), but bundle.toml says {key} = {manifest}")]
+    Geometry { key: String, recorded: String, manifest: String },
+    #[error("the attention network fails on every thumbnail from {smallest}×{smallest} to {largest}×{largest} pixels: {message}")]
+    NoThumbnail { smallest: usize, largest: usize, message: String },
     #[error("output is not f32: {0}")]
     Output(String),
     #[error("attention output has shape {0:?}, expected [1, 1, rows, cols]")]
@@ -73,6 +80,8 @@ pub enum NetworkProblem {
 /// One ONNX network with optimised plans cached per concrete input shape.
 pub struct Network {
     path: PathBuf,
+    /// The input's axes as the file declares them (None: a symbolic axis).
+    input_dims: Option<Vec<Option<i64>>>,
     model: InferenceModel,
     plans: Mutex<HashMap<Vec<usize>, Arc<TypedRunnableModel>>>,
     /// Total time spent inside inference, for separating engine overhead from network cost.
@@ -85,8 +94,15 @@ impl Network {
     }
 
     /// Loads `path`, checks that it has one input named as `net` says, of rank `rank`
-    /// (with `channels` at axis 1 when given), and the output `net` names.
-    fn load(path: PathBuf, net: &NetworkRef, rank: usize, channels: Option<usize>) -> Result<Self, BundleError> {
+    /// (with `channels` at axis 1 when given), the output `net` names, and that any
+    /// training geometry recorded in the file's metadata is the manifest's.
+    fn load(
+        path: PathBuf,
+        net: &NetworkRef,
+        rank: usize,
+        channels: Option<usize>,
+        m: &Manifest,
+    ) -> Result<Self, BundleError> {
         let fail = |problem| BundleError::Network { path: path.clone(), problem };
         if !path.is_file() {
             return Err(fail(NetworkProblem::Missing));
@@ -106,7 +122,8 @@ impl Network {
             let outs: Vec<&pb::ValueInfoProto> = graph.output.iter().collect();
             return Err(fail(NetworkProblem::OutputName { expected: net.output.clone(), found: names(&outs) }));
         }
-        if let Some(dims) = declared_dims(inputs[0]) {
+        let input_dims = declared_dims(inputs[0]);
+        if let Some(dims) = &input_dims {
             if dims.len() != rank {
                 return Err(fail(NetworkProblem::Rank { input: net.input.clone(), found: dims.len(), expected: rank }));
             }
@@ -116,11 +133,23 @@ impl Network {
                 }
             }
         }
+        let recorded = proto.metadata_props.iter().map(|e| (e.key.as_str(), e.value.as_str()));
+        check_geometry(recorded, m).map_err(fail)?;
         let model = onnx
             .model_for_proto_model(&proto)
             .and_then(|m| m.with_outputs_by_name([net.output.as_str()]))
             .map_err(|e| fail(NetworkProblem::Load(format!("{e:#}"))))?;
-        Ok(Self { path, model, plans: Mutex::new(HashMap::new()), busy_ns: AtomicU64::new(0) })
+        Ok(Self { path, input_dims, model, plans: Mutex::new(HashMap::new()), busy_ns: AtomicU64::new(0) })
+    }
+
+    /// A feature network whose input declares its patch side must declare the manifest's.
+    fn check_patch_side(&self, m: &Manifest) -> Result<(), BundleError> {
+        let p = m.patch_size as i64;
+        let Some(dims) = &self.input_dims else { return Ok(()) };
+        match dims[2..].iter().flatten().find(|&&d| d != p) {
+            Some(&found) => Err(self.error(NetworkProblem::PatchSide { found, expected: p })),
+            None => Ok(()),
+        }
     }
 
     /// The network's file.
@@ -128,9 +157,15 @@ impl Network {
         &self.path
     }
 
+    /// The plan cache. A panic contained while the lock was held leaves complete entries
+    /// only (a plan is inserted whole), so a poisoned lock is taken over.
+    fn plans(&self) -> std::sync::MutexGuard<'_, HashMap<Vec<usize>, Arc<TypedRunnableModel>>> {
+        self.plans.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+    }
+
     /// The optimised plan for one input shape, built on first use.
     pub fn plan(&self, shape: &[usize]) -> Result<Arc<TypedRunnableModel>, BundleError> {
-        if let Some(p) = self.plans.lock().expect("plan cache poisoned").get(shape) {
+        if let Some(p) = self.plans().get(shape) {
             return Ok(p.clone());
         }
         let plan = self
@@ -140,13 +175,13 @@ impl Network {
             .and_then(|m| m.into_optimized())
             .and_then(|m| m.into_runnable())
             .map_err(|e| self.error(NetworkProblem::Plan { shape: shape.to_vec(), message: format!("{e:#}") }))?;
-        self.plans.lock().expect("plan cache poisoned").insert(shape.to_vec(), plan.clone());
+        self.plans().insert(shape.to_vec(), plan.clone());
         Ok(plan)
     }
 
     /// Whether a plan for this shape is already cached.
     pub fn has_plan(&self, shape: &[usize]) -> bool {
-        self.plans.lock().expect("plan cache poisoned").contains_key(shape)
+        self.plans().contains_key(shape)
     }
 
     /// Time spent inside inference since the network was loaded.
@@ -174,6 +209,21 @@ impl Network {
         let flat = out.as_slice().map_or_else(|| out.iter().copied().collect(), <[f32]>::to_vec);
         Ok((out.shape().to_vec(), flat))
     }
+}
+
+/// Compares the training geometry a network file records (ONNX metadata, written by
+/// saccade's trainer) with the manifest; files without it are checked by the dry run only.
+fn check_geometry<'a>(recorded: impl Iterator<Item = (&'a str, &'a str)>, m: &Manifest) -> Result<(), NetworkProblem> {
+    let expected = m.geometry();
+    for (key, value) in recorded {
+        if let Some((_, want)) = expected.iter().find(|(k, _)| *k == key) {
+            if value.trim() != want {
+                let key = key.trim_start_matches(GEOMETRY_PREFIX).to_string();
+                return Err(NetworkProblem::Geometry { key, recorded: value.to_string(), manifest: want.clone() });
+            }
+        }
+    }
+    Ok(())
 }
 
 fn declared_dims(v: &pb::ValueInfoProto) -> Option<Vec<Option<i64>>> {
@@ -213,6 +263,8 @@ pub struct Bundle {
     /// head's own and each class has the manifest's single threshold.
     pub calibration: Option<Calibration>,
     pub dry_run: DryRunCosts,
+    /// Side of the smallest square thumbnail the attention network was seen to take.
+    pub min_thumbnail: u32,
 }
 
 impl Bundle {
@@ -221,11 +273,13 @@ impl Bundle {
     pub fn load(dir: &Path, batch_sizes: &[usize]) -> Result<Self, BundleError> {
         let manifest = Manifest::read(&dir.join(MANIFEST))?;
         let calibration = Calibration::read_optional(dir, &manifest.classes)?;
-        let attention = Network::load(dir.join(&manifest.attention.file), &manifest.attention, 4, Some(3))?;
-        let features = Network::load(dir.join(&manifest.features.file), &manifest.features, 4, Some(3))?;
-        let head = Network::load(dir.join(&manifest.head.file), &manifest.head, 2, None)?;
-        let baseline = match &manifest.baseline {
-            Some(net) => Some(Network::load(dir.join(&net.file), net, 4, Some(3))?),
+        let m = &manifest;
+        let attention = Network::load(dir.join(&m.attention.file), &m.attention, 4, Some(3), m)?;
+        let features = Network::load(dir.join(&m.features.file), &m.features, 4, Some(3), m)?;
+        features.check_patch_side(m)?;
+        let head = Network::load(dir.join(&m.head.file), &m.head, 2, None, m)?;
+        let baseline = match &m.baseline {
+            Some(net) => Some(Network::load(dir.join(&net.file), net, 4, Some(3), m)?),
             None => None,
         };
         let mut bundle = Self {
@@ -237,9 +291,38 @@ impl Bundle {
             baseline,
             calibration,
             dry_run: DryRunCosts::default(),
+            min_thumbnail: 0,
         };
+        bundle.min_thumbnail = bundle.smallest_thumbnail()?;
         bundle.dry_run = bundle.check_by_running(batch_sizes)?;
         Ok(bundle)
+    }
+
+    /// The smallest frame side analysed: the one whose thumbnail (sides rounded up) has
+    /// the smallest side the attention network takes.
+    pub fn min_frame_side(&self) -> u32 {
+        (self.min_thumbnail - 1) * self.manifest.thumbnail_factor + 1
+    }
+
+    /// Finds the smallest square thumbnail, from one cell up to eight cells a side, that
+    /// the attention network runs on and maps to a cell grid. Networks with pooling
+    /// layers fail (some by panicking inside tract) on thumbnails below their receptive
+    /// field; frames that small are refused before analysis instead.
+    fn smallest_thumbnail(&self) -> Result<u32, BundleError> {
+        let stride = self.manifest.cell_stride as usize;
+        let mut last = String::new();
+        for side in [stride, 2 * stride, 4 * stride, 8 * stride] {
+            let attempt = isolate::run(|| {
+                let (shape, _) = self.attention.run_flat(zeros(&[1, 3, side, side]))?;
+                self.cell_grid(&shape, side, side)
+            });
+            match attempt {
+                Ok(Ok(_)) => return Ok(side as u32),
+                Ok(Err(e)) => last = e.to_string(),
+                Err(panic) => last = panic,
+            }
+        }
+        Err(self.attention.error(NetworkProblem::NoThumbnail { smallest: stride, largest: 8 * stride, message: last }))
     }
 
     /// Runs each network on small inputs and checks every shape the engine depends on.

@@ -52,26 +52,36 @@ impl Default for Settings {
     }
 }
 
+/// A number as an error message shows it: whole numbers without a decimal point, others
+/// as Rust writes them (`1e300`, `inf`, `NaN`), never hundreds of digits.
+pub fn shown(v: f64) -> String {
+    if v.fract() == 0.0 && v.abs() < 1e15 {
+        format!("{}", v as i64)
+    } else {
+        format!("{v:?}")
+    }
+}
+
+/// Longest budget accepted: a minute per frame is far beyond any camera's cadence.
+pub const MAX_BUDGET_MS: f64 = 60_000.0;
+/// Most patches per frame, and most Gaussian samples: bounds on memory per frame.
+pub const MAX_PATCHES: usize = 1_000_000;
+pub const MAX_SAMPLES: usize = 10_000;
+
 /// A setting out of its range; [`SettingsError::field`] names the key.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum SettingsError {
-    #[error("budget_ms = {0}: expected a positive number of milliseconds")]
+    #[error("budget_ms = {}: expected more than 0 and at most {} milliseconds", shown(*.0), shown(MAX_BUDGET_MS))]
     Budget(f64),
-    #[error("min_patches = 0: expected at least 1 (an estimate needs one patch)")]
-    MinPatches,
-    #[error("max_patches = {max} is below min_patches = {min}")]
-    MaxPatches { max: usize, min: usize },
-    #[error("batch = {0}: expected 1 to 256")]
-    Batch(usize),
-    #[error("interval = {0}: expected a level strictly between 0 and 1, e.g. 0.9")]
+    #[error("{field} = {value}: expected {min} to {max}")]
+    Count { field: &'static str, value: usize, min: usize, max: usize },
+    #[error("interval = {}: expected a level strictly between 0 and 1, e.g. 0.9", shown(*.0))]
     Interval(f64),
-    #[error("samples = 0: expected at least 1 Gaussian sample for the interval")]
-    Samples,
     #[error("thresholds: expected one per class ({classes}), found {found}")]
     ThresholdCount { classes: usize, found: usize },
-    #[error("thresholds: {0} is outside [0, 1]")]
+    #[error("thresholds: {} is outside [0, 1]", shown(*.0))]
     ThresholdRange(f64),
-    #[error("{field} = {value}: expected a share strictly between 0 and 1, e.g. 0.1")]
+    #[error("{field} = {}: expected a share strictly between 0 and 1, e.g. 0.1", shown(*value))]
     Target { field: &'static str, value: f64 },
 }
 
@@ -80,13 +90,9 @@ impl SettingsError {
     pub fn field(&self) -> &'static str {
         match self {
             Self::Budget(_) => "budget_ms",
-            Self::MinPatches => "min_patches",
-            Self::MaxPatches { .. } => "max_patches",
-            Self::Batch(_) => "batch",
+            Self::Count { field, .. } | Self::Target { field, .. } => field,
             Self::Interval(_) => "interval",
-            Self::Samples => "samples",
             Self::ThresholdCount { .. } | Self::ThresholdRange(_) => "thresholds",
-            Self::Target { field, .. } => field,
         }
     }
 }
@@ -94,23 +100,21 @@ impl SettingsError {
 impl Settings {
     /// Checks the values, and the threshold count when the class count is known.
     pub fn check(&self, classes: Option<usize>) -> Result<(), SettingsError> {
-        if !(self.budget_ms > 0.0 && self.budget_ms.is_finite()) {
+        if !(self.budget_ms > 0.0 && self.budget_ms <= MAX_BUDGET_MS) {
             return Err(SettingsError::Budget(self.budget_ms));
         }
-        if self.min_patches == 0 {
-            return Err(SettingsError::MinPatches);
-        }
-        if self.max_patches < self.min_patches {
-            return Err(SettingsError::MaxPatches { max: self.max_patches, min: self.min_patches });
-        }
-        if self.batch == 0 || self.batch > 256 {
-            return Err(SettingsError::Batch(self.batch));
+        for (field, value, min, max) in [
+            ("min_patches", self.min_patches, 1, MAX_PATCHES),
+            ("max_patches", self.max_patches, self.min_patches.max(1), MAX_PATCHES),
+            ("batch", self.batch, 1, 256),
+            ("samples", self.samples, 1, MAX_SAMPLES),
+        ] {
+            if !(min..=max).contains(&value) {
+                return Err(SettingsError::Count { field, value, min, max });
+            }
         }
         if !(self.interval > 0.0 && self.interval < 1.0) {
             return Err(SettingsError::Interval(self.interval));
-        }
-        if self.samples == 0 {
-            return Err(SettingsError::Samples);
         }
         for (field, value) in [
             ("miss_target", self.miss_target),
@@ -165,6 +169,9 @@ mod tests {
             (Settings { min_patches: 0, ..d() }, "min_patches"),
             (Settings { min_patches: 9, max_patches: 8, ..d() }, "max_patches"),
             (Settings { batch: 257, ..d() }, "batch"),
+            (Settings { budget_ms: 1e300, ..d() }, "budget_ms"),
+            (Settings { max_patches: MAX_PATCHES + 1, ..d() }, "max_patches"),
+            (Settings { samples: MAX_SAMPLES + 1, ..d() }, "samples"),
             (Settings { interval: 1.0, ..d() }, "interval"),
             (Settings { samples: 0, ..d() }, "samples"),
             (Settings { thresholds: Some(vec![0.5, 1.2]), ..d() }, "thresholds"),

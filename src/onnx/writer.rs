@@ -35,6 +35,8 @@ pub enum Attr {
 pub struct GraphWriter {
     graph: pb::GraphProto,
     counter: usize,
+    /// The model's `metadata_props`, in the order given.
+    metadata: Vec<pb::StringStringEntryProto>,
 }
 
 impl GraphWriter {
@@ -42,6 +44,12 @@ impl GraphWriter {
         let mut w = Self::default();
         w.graph.name = name.to_string();
         w
+    }
+
+    /// Records a key and value in the model's metadata (`metadata_props`), e.g. the
+    /// geometry a network was trained for.
+    pub fn metadata(&mut self, key: &str, value: &str) {
+        self.metadata.push(pb::StringStringEntryProto { key: key.to_string(), value: value.to_string() });
     }
 
     fn fresh(&mut self, stem: &str) -> String {
@@ -210,6 +218,7 @@ impl GraphWriter {
             producer_name: producer.to_string(),
             producer_version: env!("CARGO_PKG_VERSION").to_string(),
             graph: Some(self.graph),
+            metadata_props: self.metadata,
             ..Default::default()
         }
         .encode_to_vec()

@@ -2,6 +2,7 @@
 //! → sinks thread, until SIGTERM or SIGINT (or the end of a finite source). SIGHUP reloads
 //! the config: a bad new config is rejected, logged, and the running one kept.
 
+use std::collections::HashSet;
 use std::path::Path;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
@@ -13,9 +14,9 @@ use super::notify::Notifier;
 use crate::config::Config;
 use crate::engine::{Bundle, Engine};
 use crate::folders;
-use crate::sinks::jsonl::JsonlLog;
+use crate::sinks::jsonl::{claims_in, JsonlLog};
 use crate::sinks::worker::{self, not_clear, SinkMsg};
-use crate::source::{self, SourceCounters};
+use crate::source::{self, Incoming, SourceConfig, SourceCounters};
 
 /// How often the loop wakes while idle, to ping the watchdog and notice signals.
 const TICK: Duration = Duration::from_millis(200);
@@ -32,27 +33,23 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     }
     signal_hook::flag::register(signal_hook::consts::SIGHUP, reload.clone())?;
 
-    let bundle = Arc::new(Bundle::load(&cfg.bundle, &cfg.engine.settings.batch_sizes())?);
-    cfg.check_classes(bundle.manifest.classes.len())?;
-    let mut engine = Engine::new(bundle.clone(), cfg.engine.settings.clone())?;
-    engine.set_mask(cfg.mask()?);
-    if let Some((w, h)) = cfg.frame_size() {
-        engine.prepare(w, h)?;
-    }
+    let mut engine = build_engine(&cfg)?;
     create_folders(&cfg)?;
     let log = JsonlLog::open(&cfg.log)
         .map_err(|e| anyhow::anyhow!("{}: cannot open the detection log: {e}", cfg.log.path.display()))?;
+    // The files a folder source claimed whose records are already on disk.
+    let recorded = match cfg.source {
+        SourceConfig::Folder { .. } => claims_in(&cfg.log.path)
+            .map_err(|e| anyhow::anyhow!("{}: cannot read the detection log: {e}", cfg.log.path.display()))?,
+        _ => HashSet::new(),
+    };
     let counters = Arc::new(SourceCounters::default());
     let (sinks, sinks_thread) = worker::spawn(log, cfg.log.clone(), &cfg.evidence, counters.clone())?;
     let source_stop = Arc::new(AtomicBool::new(false));
-    let running = source::start(&cfg.source, cfg.max_pixels, counters.clone(), source_stop.clone())
+    let running = source::start(&cfg.source, cfg.max_pixels, counters.clone(), source_stop.clone(), &recorded)
         .map_err(|e| anyhow::anyhow!("{}: {e}", config_path.display()))?;
-    log::info!(
-        "bundle {} ({} classes) and source up; log {}",
-        bundle.manifest.name,
-        bundle.manifest.classes.len(),
-        cfg.log.path.display()
-    );
+    let m = &engine.bundle().manifest;
+    log::info!("bundle {} ({} classes) and source up; log {}", m.name, m.classes.len(), cfg.log.path.display());
     notify.ready("waiting for frames");
 
     let (mut analysed, mut last_status, mut window_start, mut window_frames) =
@@ -74,21 +71,24 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
             }
         }
         let msg = match running.frames.recv_timeout(TICK) {
-            Ok(Ok(frame)) => {
+            Ok(Incoming { item: Ok(frame), claim }) => {
                 let seed = cfg.engine.seed.wrapping_add(frame.seq);
                 match engine.analyze(&frame, seed) {
                     Ok(report) => {
                         analysed += 1;
                         window_frames += 1;
                         let image = (cfg.evidence.enabled && not_clear(&report)).then_some(frame.image);
-                        SinkMsg::Frame { report: Box::new(report), captured: frame.captured, image }
+                        SinkMsg::Frame { report: Box::new(report), captured: frame.captured, image, claim }
                     }
-                    Err(e) => SinkMsg::BadFrame { origin: frame.origin, error: e.to_string() },
+                    Err(e) => {
+                        log::error!("{}: {e}", frame.origin);
+                        SinkMsg::BadFrame { origin: frame.origin, error: e.to_string(), claim }
+                    }
                 }
             }
-            Ok(Err(bad)) => {
+            Ok(Incoming { item: Err(bad), claim }) => {
                 log::error!("{}", bad.message);
-                SinkMsg::BadFrame { origin: bad.origin, error: bad.message }
+                SinkMsg::BadFrame { origin: bad.origin, error: bad.message, claim }
             }
             Err(RecvTimeoutError::Timeout) => continue,
             Err(RecvTimeoutError::Disconnected) => {
@@ -111,11 +111,26 @@ pub fn run(config_path: &Path) -> anyhow::Result<()> {
     notify.stopping();
     source_stop.store(true, Ordering::Relaxed);
     drop(running.frames);
-    running.thread.join().ok();
+    let source_ended = running.thread.join();
     drop(sinks);
     sinks_thread.join().map_err(|_| anyhow::anyhow!("the sinks thread panicked"))?;
     log::info!("stopped after {analysed} frames; log flushed");
-    Ok(())
+    // A source that died is a failure the service manager should see (and restart).
+    source_ended.map_err(|_| anyhow::anyhow!("the source thread panicked"))
+}
+
+/// Loads the bundle and builds the engine with the config's settings, mask and frame
+/// size: what `run` does before it says it is ready, and what `check` checks.
+pub fn build_engine(cfg: &Config) -> anyhow::Result<Engine> {
+    let bundle = Arc::new(Bundle::load(&cfg.bundle, &cfg.engine.settings.batch_sizes())?);
+    cfg.check_classes(bundle.manifest.classes.len())?;
+    let mut engine = Engine::new(bundle, cfg.engine.settings.clone())
+        .map_err(|e| anyhow::anyhow!("{}: [engine] {e}", cfg.path().display()))?;
+    engine.set_mask(cfg.mask()?);
+    if let Some((w, h)) = cfg.frame_size() {
+        engine.prepare(w, h)?;
+    }
+    Ok(engine)
 }
 
 /// The folders the config writes into, created if missing: the one step of `run` that

@@ -4,6 +4,7 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
+use crate::engine::shown;
 use crate::folders::{self, FolderProblem};
 
 /// Which analysed frames get a record in the detection log.
@@ -61,6 +62,10 @@ pub struct LogConfig {
     /// Seconds between health records.
     #[serde(default = "default_health")]
     pub health_interval_s: f64,
+    /// Records waiting in memory while the log cannot be written (a full disk), in MB;
+    /// past it the oldest are shed and counted.
+    #[serde(default = "default_backlog")]
+    pub backlog_mb: f64,
 }
 
 fn default_records() -> RecordPolicy {
@@ -83,6 +88,9 @@ fn default_sync_interval() -> f64 {
 }
 fn default_health() -> f64 {
     60.0
+}
+fn default_backlog() -> f64 {
+    16.0
 }
 
 /// Keys left out take their defaults (the reference config lists them).
@@ -111,29 +119,30 @@ impl Default for EvidenceConfig {
 pub enum SinkConfigError {
     #[error("{field}: {problem}")]
     Folder { field: &'static str, problem: FolderProblem },
-    #[error("{field} = {value}: expected a positive number")]
-    NotPositive { field: &'static str, value: f64 },
-    #[error("keep = 0: expected at least 1 rotated file")]
-    Keep,
+    #[error("{field} = {}: expected {} to {}", shown(*value), shown(*min), shown(*max))]
+    Range { field: &'static str, value: f64, min: f64, max: f64 },
 }
 
 impl SinkConfigError {
     /// The key the error is about, within its table.
     pub fn field(&self) -> &'static str {
         match self {
-            Self::Folder { field, .. } | Self::NotPositive { field, .. } => field,
-            Self::Keep => "keep",
+            Self::Folder { field, .. } | Self::Range { field, .. } => field,
         }
     }
 }
 
-fn positive(field: &'static str, value: f64) -> Result<(), SinkConfigError> {
-    if value > 0.0 && value.is_finite() {
-        Ok(())
-    } else {
-        Err(SinkConfigError::NotPositive { field, value })
+/// Checks each number against its range (both ends included).
+fn in_ranges(numbers: &[(&'static str, f64, f64, f64)]) -> Result<(), SinkConfigError> {
+    match numbers.iter().find(|(_, v, min, max)| !(v >= min && v <= max)) {
+        Some(&(field, value, min, max)) => Err(SinkConfigError::Range { field, value, min, max }),
+        None => Ok(()),
     }
 }
+
+/// A day: the longest interval between syncs or health records that still tells the
+/// operator something.
+const DAY_S: f64 = 86_400.0;
 
 impl LogConfig {
     /// The folder the log file lives in.
@@ -141,15 +150,26 @@ impl LogConfig {
         self.path.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."))
     }
 
-    /// Checks the values, and that the log's folder exists or can be made; writes nothing.
+    /// Checks the values, and that the log's folder exists or can be made and the log
+    /// path is not a folder; writes nothing.
     pub fn check(&self) -> Result<(), SinkConfigError> {
         folders::check_writable(self.folder()).map_err(|problem| SinkConfigError::Folder { field: "path", problem })?;
-        positive("rotate_mb", self.rotate_mb)?;
-        if self.keep == 0 {
-            return Err(SinkConfigError::Keep);
+        if self.path.is_dir() {
+            let problem = FolderProblem::IsAFolder(self.path.clone());
+            return Err(SinkConfigError::Folder { field: "path", problem });
         }
-        positive("sync_interval_s", self.sync_interval_s)?;
-        positive("health_interval_s", self.health_interval_s)
+        in_ranges(&[
+            ("rotate_mb", self.rotate_mb, 0.001, 1_048_576.0),
+            ("keep", self.keep as f64, 1.0, 1000.0),
+            ("sync_interval_s", self.sync_interval_s, 0.001, DAY_S),
+            ("health_interval_s", self.health_interval_s, 0.01, DAY_S),
+            ("backlog_mb", self.backlog_mb, 0.001, 4096.0),
+        ])
+    }
+
+    /// The backlog bound in bytes.
+    pub fn backlog_bytes(&self) -> usize {
+        (self.backlog_mb * 1024.0 * 1024.0) as usize
     }
 }
 
@@ -157,11 +177,14 @@ impl EvidenceConfig {
     /// Checks the values, and that the folder exists or can be made when evidence is on;
     /// writes nothing.
     pub fn check(&self) -> Result<(), SinkConfigError> {
+        in_ranges(&[
+            ("quota_mb", self.quota_mb, 0.001, 1_048_576.0),
+            ("max_age_hours", self.max_age_hours, 0.001, 87_600.0),
+            ("crops", self.crops as f64, 0.0, 64.0),
+        ])?;
         if !self.enabled {
             return Ok(());
         }
-        folders::check_writable(&self.dir).map_err(|problem| SinkConfigError::Folder { field: "dir", problem })?;
-        positive("quota_mb", self.quota_mb)?;
-        positive("max_age_hours", self.max_age_hours)
+        folders::check_writable(&self.dir).map_err(|problem| SinkConfigError::Folder { field: "dir", problem })
     }
 }

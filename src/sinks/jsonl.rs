@@ -1,10 +1,12 @@
 //! The detection log: JSON Lines appended a whole line per write, rotated by size.
 //!
 //! Each record is one `write` of a complete line to a file opened for appending, so a
-//! crash can leave at most the last line partial. On opening, a partial last line left by
-//! a crash is closed with a newline so that the next record starts on a line of its own;
-//! readers skip lines that do not parse (`jq -R 'fromjson?'`).
+//! crash can leave at most the last line partial. A write that fails part-way (a full
+//! disk) is cut back to the last whole line before anything else is written, and on
+//! opening, a partial last line left by a crash is cut off: every line but the last is
+//! whole. Readers skip a line that does not parse (`jq -R 'fromjson?'`).
 
+use std::collections::HashSet;
 use std::fs::{File, OpenOptions};
 use std::io::{Read, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
@@ -29,17 +31,35 @@ fn open_append(path: &Path) -> std::io::Result<(File, u64)> {
         std::fs::create_dir_all(dir)?;
     }
     let mut file = OpenOptions::new().create(true).append(true).read(true).open(path)?;
-    let mut size = file.metadata()?.len();
-    if size > 0 {
-        let mut last = [0u8; 1];
-        file.seek(SeekFrom::End(-1))?;
-        file.read_exact(&mut last)?;
-        if last[0] != b'\n' {
-            file.write_all(b"\n")?;
-            size += 1;
-        }
+    let size = file.metadata()?.len();
+    let whole = whole_lines_end(&mut file, size)?;
+    if whole < size {
+        log::warn!(
+            "{}: cutting off a partial last line of {} bytes (a write cut by a crash)",
+            path.display(),
+            size - whole
+        );
+        file.set_len(whole)?;
     }
-    Ok((file, size))
+    Ok((file, whole))
+}
+
+/// The length of the file's whole lines: just after its last newline.
+fn whole_lines_end(file: &mut File, size: u64) -> std::io::Result<u64> {
+    const CHUNK: u64 = 64 * 1024;
+    let mut end = size;
+    let mut buf = vec![0u8; CHUNK as usize];
+    while end > 0 {
+        let start = end.saturating_sub(CHUNK);
+        let chunk = &mut buf[..(end - start) as usize];
+        file.seek(SeekFrom::Start(start))?;
+        file.read_exact(chunk)?;
+        if let Some(i) = chunk.iter().rposition(|&b| b == b'\n') {
+            return Ok(start + i as u64 + 1);
+        }
+        end = start;
+    }
+    Ok(0)
 }
 
 impl JsonlLog {
@@ -71,7 +91,15 @@ impl JsonlLog {
         if self.size > 0 && self.size + buf.len() as u64 > self.rotate_bytes {
             self.rotate()?;
         }
-        self.file.write_all(&buf)?;
+        if let Err(e) = self.file.write_all(&buf) {
+            // Part of the line may be in the file: cut it off, so the next attempt (or
+            // the next record) starts on a line of its own. The file is opened for
+            // appending, so every write lands at the new end.
+            if let Err(cut) = self.file.set_len(self.size) {
+                log::error!("{}: cannot cut a partial record off: {cut}", self.path.display());
+            }
+            return Err(e);
+        }
         self.size += buf.len() as u64;
         self.dirty = true;
         match self.sync {
@@ -123,6 +151,31 @@ impl Drop for JsonlLog {
     }
 }
 
+/// The claim tokens of the records in the log and its newest rotated file: the files a
+/// folder source claimed whose records are on disk. (A record is written, synced and its
+/// file disposed of before the next record, so a record whose file is still claimed is
+/// among the newest.)
+pub fn claims_in(path: &Path) -> std::io::Result<HashSet<String>> {
+    let mut rotated = path.as_os_str().to_owned();
+    rotated.push(".1");
+    let mut tokens = HashSet::new();
+    for p in [PathBuf::from(rotated), path.to_path_buf()] {
+        let text = match std::fs::read(&p) {
+            Ok(t) => t,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => continue,
+            Err(e) => return Err(e),
+        };
+        for line in text.split(|&b| b == b'\n').filter(|l| l.windows(8).any(|w| w == b"\"claim\":")) {
+            if let Ok(serde_json::Value::Object(rec)) = serde_json::from_slice(line) {
+                if let Some(serde_json::Value::String(t)) = rec.get("claim") {
+                    tokens.insert(t.clone());
+                }
+            }
+        }
+    }
+    Ok(tokens)
+}
+
 /// Reads the records of a log, skipping a partial or unparsable line, as a reader should.
 pub fn read_records(path: &Path) -> std::io::Result<Vec<serde_json::Value>> {
     let text = std::fs::read_to_string(path)?;
@@ -143,6 +196,7 @@ mod tests {
             sync: SyncPolicy::Always,
             sync_interval_s: 1.0,
             health_interval_s: 60.0,
+            backlog_mb: 1.0,
         }
     }
 
@@ -169,14 +223,31 @@ mod tests {
     }
 
     #[test]
-    fn a_partial_last_line_is_closed_on_open() {
+    fn a_partial_last_line_is_cut_off_on_open() {
         let dir = tempfile::tempdir().unwrap();
         let c = cfg(dir.path(), 1.0, 2);
         std::fs::write(&c.path, b"{\"n\":1}\n{\"n\":2,\"cut").unwrap();
         let mut log = JsonlLog::open(&c).unwrap();
         log.append(b"{\"n\":3}").unwrap();
         drop(log);
-        let recs = read_records(&c.path).unwrap();
-        assert_eq!(recs.iter().map(|r| r["n"].as_i64().unwrap()).collect::<Vec<_>>(), vec![1, 3]);
+        assert_eq!(std::fs::read_to_string(&c.path).unwrap(), "{\"n\":1}\n{\"n\":3}\n");
+        // A file that is one partial line, and one longer than a read chunk.
+        std::fs::write(&c.path, b"{\"n\":").unwrap();
+        drop(JsonlLog::open(&c).unwrap());
+        assert_eq!(std::fs::read(&c.path).unwrap(), b"");
+        let long = format!("{{\"pad\":\"{}\"}}\n{{\"cut", "x".repeat(200_000));
+        std::fs::write(&c.path, &long).unwrap();
+        drop(JsonlLog::open(&c).unwrap());
+        assert_eq!(std::fs::read(&c.path).unwrap().len(), 200_011);
+    }
+
+    #[test]
+    fn claims_are_read_from_the_log_and_its_newest_rotation() {
+        let dir = tempfile::tempdir().unwrap();
+        let c = cfg(dir.path(), 1.0, 2);
+        std::fs::write(dir.path().join("log.jsonl.1"), b"{\"claim\":\"a-1\"}\n{\"n\":1}\n").unwrap();
+        std::fs::write(&c.path, b"{\"claim\":\"a-2\",\"n\":2}\n{\"claim\":\"a-3\",\"cu").unwrap();
+        let got = claims_in(&c.path).unwrap();
+        assert_eq!(got, ["a-1", "a-2"].map(String::from).into_iter().collect());
     }
 }

@@ -32,6 +32,9 @@ pub struct FrameRecord<'a> {
     /// The evidence images written for this frame.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub evidence: Option<EvidenceFiles>,
+    /// The claim on the frame's file (watched folders only).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub claim: Option<&'a str>,
     #[serde(flatten)]
     pub report: &'a Report,
 }
@@ -51,6 +54,8 @@ pub struct ErrorRecord<'a> {
     pub time: String,
     pub origin: &'a str,
     pub error: &'a str,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub claim: Option<&'a str>,
 }
 
 #[derive(Serialize, Clone, Copy, Default)]
@@ -89,4 +94,8 @@ pub struct HealthRecord {
     pub analysis_ms: Percentiles,
     pub age_ms: Percentiles,
     pub evidence: bool,
+    /// Records waiting in memory for the log to take them (a full disk), in bytes.
+    pub backlog_bytes: u64,
+    /// Records given up since start because the backlog passed `backlog_mb`.
+    pub shed: u64,
 }

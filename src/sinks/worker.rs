@@ -14,17 +14,21 @@ use super::config::{EvidenceConfig, LogConfig, PatchPolicy, RecordPolicy};
 use super::evidence::Evidence;
 use super::jsonl::JsonlLog;
 use super::record::{rfc3339, ErrorRecord, FrameRecord, HealthRecord, Percentiles, SCHEMA};
-use crate::engine::{Outcome, Report};
+use crate::engine::{isolate, Outcome, Report};
+use crate::source::claim::Claim;
 use crate::source::SourceCounters;
 
 pub enum SinkMsg {
-    Frame { report: Box<Report>, captured: SystemTime, image: Option<RgbImage> },
-    BadFrame { origin: String, error: String },
+    Frame { report: Box<Report>, captured: SystemTime, image: Option<RgbImage>, claim: Option<Claim> },
+    BadFrame { origin: String, error: String, claim: Option<Claim> },
     Reconfigure { log: LogConfig, evidence: EvidenceConfig },
 }
 
-/// Records waiting for a log that failed to write are kept, up to this many.
-const PENDING_MAX: usize = 10_000;
+/// A record not yet in the log, and the claim on its file.
+struct Pending {
+    line: Vec<u8>,
+    claim: Option<Claim>,
+}
 
 struct Worker {
     log: JsonlLog,
@@ -32,7 +36,13 @@ struct Worker {
     evidence: Evidence,
     counters: Arc<SourceCounters>,
     started: Instant,
-    pending: VecDeque<Vec<u8>>,
+    /// Records the log could not take yet (a full disk), oldest first, and their bytes.
+    pending: VecDeque<Pending>,
+    pending_bytes: usize,
+    /// Records given up because the backlog passed its bound.
+    shed: u64,
+    /// Claims whose records are written but not yet synced: disposed of after the sync.
+    unsynced: Vec<Claim>,
     analysed: u64,
     errors: u64,
     overruns: u64,
@@ -77,6 +87,9 @@ pub fn spawn(
         counters,
         started: now,
         pending: VecDeque::new(),
+        pending_bytes: 0,
+        shed: 0,
+        unsynced: Vec::new(),
         analysed: 0,
         errors: 0,
         overruns: 0,
@@ -93,27 +106,32 @@ impl Worker {
         loop {
             let due = self.window_start + Duration::from_secs_f64(self.log_cfg.health_interval_s);
             match rx.recv_timeout(due.saturating_duration_since(Instant::now())) {
-                Ok(msg) => self.handle(msg),
+                // A panic while writing one record (or its evidence) loses that record
+                // only; the thread, and the log, go on.
+                Ok(msg) => {
+                    if let Err(panic) = isolate::run(|| self.handle(msg)) {
+                        log::error!("{}: a record was lost to an internal error: {panic}", self.log.path().display());
+                    }
+                }
                 Err(RecvTimeoutError::Timeout) => self.health(),
                 Err(RecvTimeoutError::Disconnected) => break,
             }
         }
         self.health();
-        if let Err(e) = self.log.sync_now() {
-            log::error!("{}: final sync failed: {e}", self.log.path().display());
-        }
+        self.sync_and_dispose();
         if !self.pending.is_empty() {
             log::error!(
-                "{}: {} records could not be written before exit",
+                "{}: {} records ({} bytes) could not be written before exit; their files stay claimed",
                 self.log.path().display(),
-                self.pending.len()
+                self.pending.len(),
+                self.pending_bytes
             );
         }
     }
 
     fn handle(&mut self, msg: SinkMsg) {
         match msg {
-            SinkMsg::Frame { mut report, captured, image } => {
+            SinkMsg::Frame { mut report, captured, image, claim } => {
                 self.analysed += 1;
                 self.overruns += u64::from(!report.budget_met);
                 self.window_ms.push(report.times_ms.total);
@@ -138,12 +156,16 @@ impl Worker {
                         captured: rfc3339(captured),
                         age_ms,
                         evidence,
+                        claim: claim.as_ref().map(|c| c.token.as_str()),
                         report: &report,
                     };
-                    self.write(serde_json::to_vec(&rec).expect("record serialises"));
+                    self.write(serde_json::to_vec(&rec).expect("record serialises"), claim);
+                } else if let Some(c) = claim {
+                    // No record to wait for.
+                    dispose(c);
                 }
             }
-            SinkMsg::BadFrame { origin, error } => {
+            SinkMsg::BadFrame { origin, error, claim } => {
                 self.errors += 1;
                 let rec = ErrorRecord {
                     schema: SCHEMA,
@@ -151,8 +173,9 @@ impl Worker {
                     time: rfc3339(SystemTime::now()),
                     origin: &origin,
                     error: &error,
+                    claim: claim.as_ref().map(|c| c.token.as_str()),
                 };
-                self.write(serde_json::to_vec(&rec).expect("record serialises"));
+                self.write(serde_json::to_vec(&rec).expect("record serialises"), claim);
             }
             SinkMsg::Reconfigure { log, evidence } => {
                 if log != self.log_cfg {
@@ -171,26 +194,59 @@ impl Worker {
         }
     }
 
-    /// Appends a record, first any that an earlier failure left waiting.
-    fn write(&mut self, line: Vec<u8>) {
-        self.pending.push_back(line);
-        while let Some(l) = self.pending.front() {
-            if let Err(e) = self.log.append(l) {
-                log::error!(
-                    "{}: cannot write a record ({} waiting): {e}",
-                    self.log.path().display(),
-                    self.pending.len()
-                );
-                if self.pending.len() > PENDING_MAX {
-                    self.pending.pop_front();
+    /// Appends a record, first any that an earlier failure left waiting. Past the
+    /// backlog bound the oldest waiting records are shed (their files stay claimed and
+    /// are analysed again at the next start).
+    fn write(&mut self, line: Vec<u8>, claim: Option<Claim>) {
+        self.pending_bytes += line.len();
+        self.pending.push_back(Pending { line, claim });
+        while let Some(p) = self.pending.front() {
+            if let Err(e) = self.log.append(&p.line) {
+                // Said when the backlog starts and as it doubles, not for every record.
+                if self.pending.len().is_power_of_two() {
                     log::error!(
-                        "{}: more than {PENDING_MAX} records waiting; the oldest was discarded",
-                        self.log.path().display()
+                        "{}: cannot write a record ({} waiting, {} bytes): {e}",
+                        self.log.path().display(),
+                        self.pending.len(),
+                        self.pending_bytes
                     );
+                }
+                let bound = self.log_cfg.backlog_bytes();
+                while self.pending_bytes > bound {
+                    let Some(old) = self.pending.pop_front() else { break };
+                    self.pending_bytes -= old.line.len();
+                    self.shed += 1;
+                    if self.shed.is_power_of_two() {
+                        log::error!(
+                            "{}: backlog over backlog_mb = {}: {} records shed so far",
+                            self.log.path().display(),
+                            self.log_cfg.backlog_mb,
+                            self.shed
+                        );
+                    }
                 }
                 return;
             }
-            self.pending.pop_front();
+            let p = self.pending.pop_front().expect("front exists");
+            self.pending_bytes -= p.line.len();
+            if let Some(c) = p.claim {
+                self.unsynced.push(c);
+                self.sync_and_dispose();
+            }
+        }
+    }
+
+    /// Syncs the log and disposes of the files whose records it now holds durably.
+    fn sync_and_dispose(&mut self) {
+        if let Err(e) = self.log.sync_now() {
+            log::error!(
+                "{}: sync failed: {e}; used files stay claimed until a sync succeeds",
+                self.log.path().display()
+            );
+            return;
+        }
+        for c in self.unsynced.drain(..) {
+            dispose(c);
         }
     }
 
@@ -211,10 +267,23 @@ impl Worker {
             analysis_ms: Percentiles::of(&mut self.window_ms),
             age_ms: Percentiles::of(&mut self.window_age),
             evidence: self.evidence.enabled,
+            backlog_bytes: self.pending_bytes as u64,
+            shed: self.shed,
         };
-        self.write(serde_json::to_vec(&rec).expect("record serialises"));
+        self.write(serde_json::to_vec(&rec).expect("record serialises"), None);
+        if !self.unsynced.is_empty() {
+            self.sync_and_dispose();
+        }
         self.window_ms.clear();
         self.window_age.clear();
         self.window_start = Instant::now();
+    }
+}
+
+/// Deletes, moves or puts back a file whose record is on disk (or that needs none).
+fn dispose(claim: Claim) {
+    let origin = claim.origin();
+    if let Err(e) = claim.dispose() {
+        log::warn!("{origin}: recorded, but cannot dispose of the file: {e}; it stays claimed");
     }
 }

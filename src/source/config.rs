@@ -4,6 +4,7 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
+use crate::engine::shown;
 use crate::folders::{self, FolderProblem};
 
 /// Pixel formats a camera may deliver that the source converts.
@@ -146,41 +147,38 @@ impl SourceConfig {
 /// A `[source]` value that cannot be used; [`SourceConfigError::field`] names the key.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum SourceConfigError {
-    #[error("{0} = 0: expected a positive number")]
-    Zero(&'static str),
+    #[error("{field} = {}: expected {} to {}", shown(*value), shown(*min), shown(*max))]
+    Range { field: &'static str, value: f64, min: f64, max: f64 },
     #[error("formats: {0:?} is not one of \"mjpeg\", \"yuyv\", \"nv12\"")]
     Format(String),
     #[error("device = {0:?}: expected /dev/videoN")]
     Device(String),
     #[error("path = {0:?}: not a folder")]
     NotAFolder(PathBuf),
+    #[error("path: {0} (files are claimed by a rename inside the folder)")]
+    Inbox(FolderProblem),
     #[error("after = \"move\" needs move_to = \"FOLDER\"")]
     MoveWithoutFolder,
     #[error("move_to: {0}")]
     MoveTo(FolderProblem),
     #[error("paths: expected at least one file or glob pattern")]
     NoPaths,
-    #[error("rate_fps = {0}: expected 0 (as fast as possible) or a positive rate")]
+    #[error("rate_fps = {}: expected 0 (as fast as analysis goes) or 0.001 to 1000", shown(*.0))]
     Rate(f64),
-    #[error("{key} = {value}: a generated frame is at least 64 pixels wide and high")]
-    SceneSize { key: &'static str, value: u32 },
-    #[error("fps = {0}: expected a positive rate")]
-    Fps(f64),
 }
 
 impl SourceConfigError {
     /// The `[source]` key the error is about.
     pub fn field(&self) -> &'static str {
         match self {
-            Self::Zero(key) | Self::SceneSize { key, .. } => key,
+            Self::Range { field, .. } => field,
             Self::Format(_) => "formats",
             Self::Device(_) => "device",
-            Self::NotAFolder(_) => "path",
+            Self::NotAFolder(_) | Self::Inbox(_) => "path",
             Self::MoveWithoutFolder => "after",
             Self::MoveTo(_) => "move_to",
             Self::NoPaths => "paths",
             Self::Rate(_) => "rate_fps",
-            Self::Fps(_) => "fps",
         }
     }
 }
@@ -193,49 +191,62 @@ pub fn device_index(device: &str) -> Result<u32, SourceConfigError> {
 impl SourceConfig {
     /// Checks the values, and that folders exist or can be made; writes nothing.
     pub fn check(&self) -> Result<(), SourceConfigError> {
-        let positive = |key, v: u64| if v == 0 { Err(SourceConfigError::Zero(key)) } else { Ok(()) };
+        for (field, value, min, max) in self.numbers() {
+            if !(value >= min && value <= max) {
+                return Err(SourceConfigError::Range { field, value, min, max });
+            }
+        }
         match self {
-            Self::Camera { device, width, height, fps, formats } => {
+            Self::Camera { device, formats, .. } => {
                 device_index(device)?;
-                positive("width", (*width).into())?;
-                positive("height", (*height).into())?;
-                positive("fps", (*fps).into())?;
                 if let Some(f) = formats.iter().find(|f| !CAMERA_FORMATS.contains(&f.as_str())) {
                     return Err(SourceConfigError::Format(f.clone()));
                 }
             }
-            Self::Folder { path, after, move_to, stable_ms, poll_ms, .. } => {
+            Self::Folder { path, after, move_to, .. } => {
                 if !path.is_dir() {
                     return Err(SourceConfigError::NotAFolder(path.clone()));
                 }
+                folders::check_writable(path).map_err(SourceConfigError::Inbox)?;
                 match (after, move_to) {
                     (AfterUse::Move, None) => return Err(SourceConfigError::MoveWithoutFolder),
                     (AfterUse::Move, Some(m)) => folders::check_writable(m).map_err(SourceConfigError::MoveTo)?,
                     _ => {}
                 }
-                positive("stable_ms", *stable_ms)?;
-                positive("poll_ms", *poll_ms)?;
             }
             Self::Files { paths, rate_fps, .. } => {
                 if paths.is_empty() {
                     return Err(SourceConfigError::NoPaths);
                 }
-                if !(*rate_fps >= 0.0 && rate_fps.is_finite()) {
+                if !(*rate_fps == 0.0 || (0.001..=1000.0).contains(rate_fps)) {
                     return Err(SourceConfigError::Rate(*rate_fps));
                 }
             }
-            Self::Scene { width, height, fps, .. } => {
-                for (key, value) in [("width", *width), ("height", *height)] {
-                    if value < 64 {
-                        return Err(SourceConfigError::SceneSize { key, value });
-                    }
-                }
-                if !(*fps > 0.0 && fps.is_finite()) {
-                    return Err(SourceConfigError::Fps(*fps));
-                }
-            }
+            Self::Scene { .. } => {}
         }
         Ok(())
+    }
+
+    /// Every number of the table with its accepted range. Sizes stop at 16384 pixels a
+    /// side (a generated frame at 8192, it is held in memory); times and rates stay where
+    /// a `Duration` of them exists and means something for a camera.
+    fn numbers(&self) -> Vec<(&'static str, f64, f64, f64)> {
+        match self {
+            Self::Camera { width, height, fps, .. } => vec![
+                ("width", *width as f64, 1.0, 16384.0),
+                ("height", *height as f64, 1.0, 16384.0),
+                ("fps", *fps as f64, 1.0, 1000.0),
+            ],
+            Self::Folder { stable_ms, poll_ms, .. } => {
+                vec![("stable_ms", *stable_ms as f64, 1.0, 3_600_000.0), ("poll_ms", *poll_ms as f64, 1.0, 60_000.0)]
+            }
+            Self::Files { .. } => vec![],
+            Self::Scene { width, height, fps, .. } => vec![
+                ("width", *width as f64, 64.0, 8192.0),
+                ("height", *height as f64, 64.0, 8192.0),
+                ("fps", *fps, 0.001, 1000.0),
+            ],
+        }
     }
 
     /// Folders `saccade run` creates before the source starts.

@@ -4,7 +4,10 @@
 use std::io::Cursor;
 use std::path::Path;
 
-use image::{ImageFormat, ImageReader, Limits};
+use image::metadata::Orientation;
+use image::{DynamicImage, ImageDecoder, ImageFormat, ImageReader, Limits};
+
+use super::jpeg_end::{find_end, JpegEnd};
 
 use crate::engine::Frame;
 
@@ -61,9 +64,10 @@ pub fn decode_bytes(bytes: &[u8], origin: String, seq: u64, max_pixels: u64) -> 
             message: format!("the header declares {width}×{height} pixels"),
         });
     }
-    // Some JPEG decoders fill a truncated scan with grey instead of failing; a complete
-    // file ends with the end-of-image marker (trailing padding bytes are tolerated).
-    if format == ImageFormat::Jpeg && !bytes[bytes.len().saturating_sub(64)..].windows(2).any(|w| w == [0xFF, 0xD9]) {
+    // Some JPEG decoders fill a truncated scan with grey instead of failing: a complete
+    // file has the main image's end-of-image marker, whatever follows it. A file whose
+    // markers do not walk is left to the decoder, which says what is wrong.
+    if format == ImageFormat::Jpeg && find_end(bytes) == JpegEnd::Missing {
         return Err(DecodeError::Corrupt { origin, format, message: "truncated: no end-of-image marker".into() });
     }
 
@@ -72,6 +76,11 @@ pub fn decode_bytes(bytes: &[u8], origin: String, seq: u64, max_pixels: u64) -> 
     // The decoder's own allocation cap, as a second guard: RGBA16 worst case plus slack.
     limits.max_alloc = Some(pixels * 8 + (1 << 20));
     reader.limits(limits);
-    let image = reader.decode().map_err(|e| corrupt(e, &origin))?.into_rgb8();
-    Ok(Frame::new(seq, origin, image))
+    let mut decoder = reader.into_decoder().map_err(|e| corrupt(e, &origin))?;
+    // A snapshot's EXIF orientation (JPEG APP1, PNG eXIf) says how to turn the pixels
+    // upright; an unreadable one is taken as none, as viewers do.
+    let orientation = decoder.orientation().unwrap_or(Orientation::NoTransforms);
+    let mut image = DynamicImage::from_decoder(decoder).map_err(|e| corrupt(e, &origin))?;
+    image.apply_orientation(orientation);
+    Ok(Frame::new(seq, origin, image.into_rgb8()))
 }

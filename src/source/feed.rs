@@ -7,11 +7,17 @@ use std::time::Duration;
 
 use crossbeam_channel::{bounded, Receiver, SendTimeoutError, Sender, TrySendError};
 
+use super::claim::Claim;
 use super::config::Overload;
 use crate::engine::Frame;
 
-/// A frame, or why a frame could not be had (logged, then the daemon goes on).
-pub type Incoming = Result<Frame, FrameError>;
+/// A frame, or why a frame could not be had (logged, then the daemon goes on), and the
+/// claim on its file when it came from a watched folder: the file is disposed of once
+/// the record is on disk.
+pub struct Incoming {
+    pub item: Result<Frame, FrameError>,
+    pub claim: Option<Claim>,
+}
 
 #[derive(Clone, Debug)]
 pub struct FrameError {
@@ -50,13 +56,23 @@ impl Feed {
     }
 
     /// Hands an item over; false when the daemon is stopping or analysis has gone.
-    pub fn send(&self, mut item: Incoming) -> bool {
+    pub fn send(&self, item: Result<Frame, FrameError>) -> bool {
+        self.hand_over(Incoming { item, claim: None }, self.overload)
+    }
+
+    /// Hands over an item read from a claimed file, waiting until analysis takes it: a
+    /// claimed file is never dropped (the folder itself is the queue).
+    pub fn send_claimed(&self, item: Result<Frame, FrameError>, claim: Claim) -> bool {
+        self.hand_over(Incoming { item, claim: Some(claim) }, Overload::Wait)
+    }
+
+    fn hand_over(&self, mut item: Incoming, overload: Overload) -> bool {
         self.counters.frames_in.fetch_add(1, Ordering::Relaxed);
         loop {
             if self.stopped() {
                 return false;
             }
-            match self.overload {
+            match overload {
                 Overload::Wait => match self.tx.send_timeout(item, Duration::from_millis(100)) {
                     Ok(()) => return true,
                     Err(SendTimeoutError::Timeout(i)) => item = i,
