@@ -101,6 +101,14 @@ fn a_tiny_run_lowers_the_loss_and_exports_checked_networks() {
 
     let bundle = Bundle::load(&out, &[1, 5]).unwrap();
     assert!(bundle.baseline.is_some());
+    // The networks record the geometry they were trained for: a manifest that claims
+    // another thumbnail factor (which no dry run could notice) is refused.
+    let manifest = out.join("bundle.toml");
+    let text = std::fs::read_to_string(&manifest).unwrap();
+    std::fs::write(&manifest, text.replace("thumbnail_factor = 8", "thumbnail_factor = 4")).unwrap();
+    let err = Bundle::load(&out, &[1, 5]).err().expect("a changed thumbnail factor is refused").to_string();
+    assert!(err.contains("thumbnail_factor"), "{err}");
+    std::fs::write(&manifest, text).unwrap();
     // Calibration on the held-out split: one map per class, fitted on its 4 frames.
     let cal = bundle.calibration.as_ref().expect("saccade train writes calibration.json");
     assert_eq!(cal.frames, t.held_out.frames);

@@ -338,12 +338,12 @@ pub fn write_bundle(
     let write = |name: &str, bytes: Vec<u8>| {
         std::fs::write(dir.join(name), bytes).with_context(|| format!("writing {}", dir.join(name).display()))
     };
-    let (d, c) = (m.feature_dim, m.classes.len());
-    write("attention.onnx", model::attention_onnx(&s.attention))?;
-    write("features.onnx", model::features_onnx(&s.features, m.patch_size as usize, d))?;
+    let (d, c, geo) = (m.feature_dim, m.classes.len(), m.geometry());
+    write("attention.onnx", model::attention_onnx(&s.attention, &geo))?;
+    write("features.onnx", model::features_onnx(&s.features, m.patch_size as usize, d, &geo))?;
     write("head.onnx", model::head_onnx(&s.head, d, c))?;
     if let Some(b) = baseline {
-        write("baseline.onnx", model::baseline_onnx(b, c))?;
+        write("baseline.onnx", model::baseline_onnx(b, c, &geo))?;
     }
     write(MANIFEST, toml::to_string_pretty(m)?.into_bytes())?;
     let lines: Vec<String> = log.iter().map(serde_json::to_string).collect::<Result<_, _>>()?;

@@ -236,16 +236,26 @@ fn thumbnail_input(g: &mut GraphWriter) -> String {
     g.input("thumbnail", &[Dim::Fixed(1), Dim::Fixed(3), Dim::Symbol("height"), Dim::Symbol("width")])
 }
 
-pub fn attention_onnx(net: &Net) -> Vec<u8> {
+/// Records the bundle geometry the weights were trained for (`Manifest::geometry`), which
+/// the bundle loader checks against the manifest.
+fn record_geometry(g: &mut GraphWriter, geometry: &[(String, String)]) {
+    for (key, value) in geometry {
+        g.metadata(key, value);
+    }
+}
+
+pub fn attention_onnx(net: &Net, geometry: &[(String, String)]) -> Vec<u8> {
     let mut g = GraphWriter::new("attention");
+    record_geometry(&mut g, geometry);
     let x = thumbnail_input(&mut g);
     let s = net.onnx(&mut g, &x);
     g.output(&s, "scores", &[Dim::Fixed(1), Dim::Fixed(1), Dim::Symbol("rows"), Dim::Symbol("cols")]);
     g.finish(PRODUCER)
 }
 
-pub fn features_onnx(net: &Net, patch: usize, dim: usize) -> Vec<u8> {
+pub fn features_onnx(net: &Net, patch: usize, dim: usize, geometry: &[(String, String)]) -> Vec<u8> {
     let mut g = GraphWriter::new("features");
+    record_geometry(&mut g, geometry);
     let p = patch as i64;
     let x = g.input("patches", &[Dim::Symbol("batch"), Dim::Fixed(3), Dim::Fixed(p), Dim::Fixed(p)]);
     let f = net.onnx(&mut g, &x);
@@ -261,8 +271,9 @@ pub fn head_onnx(net: &Net, dim: usize, classes: usize) -> Vec<u8> {
     g.finish(PRODUCER)
 }
 
-pub fn baseline_onnx(net: &Net, classes: usize) -> Vec<u8> {
+pub fn baseline_onnx(net: &Net, classes: usize, geometry: &[(String, String)]) -> Vec<u8> {
     let mut g = GraphWriter::new("baseline");
+    record_geometry(&mut g, geometry);
     let x = thumbnail_input(&mut g);
     let z = net.onnx(&mut g, &x);
     g.output(&z, "logits", &[Dim::Fixed(1), Dim::Fixed(classes as i64)]);
