@@ -678,7 +678,7 @@ pub struct Stepper {
     /// The attention the stage started from (the attention stage examines its top cells).
     entry: Net,
     /// The warm-up's mined cells per frame of the data set (empty: none yet).
-    pub mined: Vec<Vec<usize>>,
+    mined: Vec<Vec<usize>>,
     opt: [AdamW; 3],
     workers: Vec<Worker>,
 }
