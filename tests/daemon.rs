@@ -32,6 +32,15 @@ impl Setup {
         self.dir.path().join(p)
     }
 
+    /// A `[source]` table that plays the files matching `glob` (in the test's folder)
+    /// over and over at `rate_fps`.
+    fn repeating(&self, glob: &str, rate_fps: f64) -> String {
+        format!(
+            "kind = \"files\"\npaths = [{:?}]\nrate_fps = {rate_fps}\nrepeat = true",
+            self.path(glob).display().to_string()
+        )
+    }
+
     fn log(&self) -> PathBuf {
         self.path("log/detections.jsonl")
     }
@@ -229,10 +238,7 @@ fn folder_source_end_to_end_with_bad_frames() {
 fn sighup_applies_a_good_config_and_keeps_the_old_one_on_a_bad_one() {
     let s = Setup::new();
     s.frames("frames", 2, 640, 480);
-    let source = format!(
-        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 20\nrepeat = true",
-        s.path("frames/*.jpg").display().to_string()
-    );
+    let source = s.repeating("frames/*.jpg", 20.0);
     let cfg = s.config(&source, "budget_ms = 40", "");
     let mut child = s.spawn(&cfg, &[]);
     wait_for(60, "records at 40 ms", || kind(&s.records(), "frame").len() >= 3);
@@ -300,10 +306,7 @@ fn overload_drops_frames_keeps_memory_flat_and_age_bounded() {
     for i in 0..4u64 {
         scene::generate(800, 600, 100 + i).image.save(dir.join(format!("f{i:03}.ppm"))).unwrap();
     }
-    let source = format!(
-        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 0\nrepeat = true\noverload = \"drop_oldest\"",
-        s.path("frames/*.ppm").display().to_string()
-    );
+    let source = s.repeating("frames/*.ppm", 0.0) + "\noverload = \"drop_oldest\"";
     let cfg = s.config(&source, "estimator = \"exhaustive\"", "health_interval_s = 1\nrecords = \"not_clear\"");
     let mut child = s.spawn(&cfg, &[]);
     wait_for(60, "the first health record", || !kind(&s.records(), "health").is_empty());
@@ -332,10 +335,7 @@ fn notifies_ready_watchdog_status_and_stopping() {
     let sock_path = s.path("notify.sock");
     let sock = UnixDatagram::bind(&sock_path).unwrap();
     sock.set_read_timeout(Some(Duration::from_millis(200))).unwrap();
-    let source = format!(
-        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 5\nrepeat = true",
-        s.path("frames/*.jpg").display().to_string()
-    );
+    let source = s.repeating("frames/*.jpg", 5.0);
     let cfg = s.config(&source, "budget_ms = 20", "");
     let mut child = s.spawn(&cfg, &[("NOTIFY_SOCKET", sock_path.to_str().unwrap()), ("WATCHDOG_USEC", "500000")]);
     let mut msgs = Vec::new();
@@ -667,10 +667,7 @@ fn a_full_disk_keeps_whole_lines_bounds_the_backlog_and_reports_it() {
     use std::os::unix::process::CommandExt;
     let s = Setup::new();
     s.frames("frames", 2, 320, 240);
-    let source = format!(
-        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 50\nrepeat = true",
-        s.path("frames/*.jpg").display().to_string()
-    );
+    let source = s.repeating("frames/*.jpg", 50.0);
     let cfg = s.config(&source, "budget_ms = 20", "health_interval_s = 0.2\nbacklog_mb = 0.004\nsync = \"always\"");
     // The log's file system is simulated full by a file size limit (RLIMIT_FSIZE); writes
     // past it fail part-way, as on a full disk. SIGXFSZ ignored, so they fail with EFBIG.
@@ -731,10 +728,7 @@ fn a_full_disk_keeps_whole_lines_bounds_the_backlog_and_reports_it() {
 fn out_of_range_values_are_refused_by_check_run_and_reload() {
     let s = Setup::new();
     s.frames("frames", 2, 320, 240);
-    let files = format!(
-        "kind = \"files\"\npaths = [{:?}]\nrate_fps = 20\nrepeat = true",
-        s.path("frames/*.jpg").display().to_string()
-    );
+    let files = s.repeating("frames/*.jpg", 20.0);
     let evidence =
         |extra: &str| format!("\n[evidence]\nenabled = true\ndir = {:?}\n{extra}", s.path("ev").display().to_string());
     let cases: Vec<(String, String, String, &str)> = vec![

@@ -3,6 +3,7 @@
 use serde::{Deserialize, Serialize};
 
 use super::estimator::EstimatorKind;
+use super::ranges::shown;
 use crate::bundle::calibration::Targets;
 
 /// Per-frame knobs; the daemon reloads these without reloading the bundle.
@@ -49,16 +50,6 @@ impl Default for Settings {
             false_alarm_target: 0.1,
             target_confidence: 0.9,
         }
-    }
-}
-
-/// A number as an error message shows it: whole numbers without a decimal point, others
-/// as Rust writes them (`1e300`, `inf`, `NaN`), never hundreds of digits.
-pub fn shown(v: f64) -> String {
-    if v.fract() == 0.0 && v.abs() < 1e15 {
-        format!("{}", v as i64)
-    } else {
-        format!("{v:?}")
     }
 }
 

@@ -4,7 +4,7 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use crate::engine::shown;
+use crate::engine::ranges::{first_outside, shown, Ranged};
 use crate::folders::{self, FolderProblem};
 
 /// Which analysed frames get a record in the detection log.
@@ -133,9 +133,9 @@ impl SinkConfigError {
 }
 
 /// Checks each number against its range (both ends included).
-fn in_ranges(numbers: &[(&'static str, f64, f64, f64)]) -> Result<(), SinkConfigError> {
-    match numbers.iter().find(|(_, v, min, max)| !(v >= min && v <= max)) {
-        Some(&(field, value, min, max)) => Err(SinkConfigError::Range { field, value, min, max }),
+fn in_ranges(numbers: &[Ranged]) -> Result<(), SinkConfigError> {
+    match first_outside(numbers) {
+        Some((field, value, min, max)) => Err(SinkConfigError::Range { field, value, min, max }),
         None => Ok(()),
     }
 }

@@ -4,7 +4,7 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use crate::engine::shown;
+use crate::engine::ranges::{first_outside, shown, Ranged};
 use crate::folders::{self, FolderProblem};
 
 /// Pixel formats a camera may deliver that the source converts.
@@ -191,10 +191,8 @@ pub fn device_index(device: &str) -> Result<u32, SourceConfigError> {
 impl SourceConfig {
     /// Checks the values, and that folders exist or can be made; writes nothing.
     pub fn check(&self) -> Result<(), SourceConfigError> {
-        for (field, value, min, max) in self.numbers() {
-            if !(value >= min && value <= max) {
-                return Err(SourceConfigError::Range { field, value, min, max });
-            }
+        if let Some((field, value, min, max)) = first_outside(&self.numbers()) {
+            return Err(SourceConfigError::Range { field, value, min, max });
         }
         match self {
             Self::Camera { device, formats, .. } => {
@@ -230,7 +228,7 @@ impl SourceConfig {
     /// Every number of the table with its accepted range. Sizes stop at 16384 pixels a
     /// side (a generated frame at 8192, it is held in memory); times and rates stay where
     /// a `Duration` of them exists and means something for a camera.
-    fn numbers(&self) -> Vec<(&'static str, f64, f64, f64)> {
+    fn numbers(&self) -> Vec<Ranged> {
         match self {
             Self::Camera { width, height, fps, .. } => vec![
                 ("width", *width as f64, 1.0, 16384.0),
